@@ -1,0 +1,47 @@
+"""Options and output helpers shared by every command."""
+
+from __future__ import annotations
+
+import json
+import sys
+from typing import Annotated, Any
+
+import typer
+from rich.console import Console
+
+DbOption = Annotated[
+    str | None,
+    typer.Option(
+        "--db",
+        envvar="PRIORLEDGER_DB",
+        help="Registry: a SQLAlchemy URL or a SQLite file path [default: ./priorledger.db].",
+        show_default=False,
+    ),
+]
+JsonOption = Annotated[
+    bool, typer.Option("--json", help="Print exactly one JSON document on stdout.")
+]
+
+out = Console(highlight=False)
+err = Console(stderr=True, highlight=False)
+
+
+def print_json(doc: Any) -> None:
+    sys.stdout.write(json.dumps(doc, indent=2, allow_nan=False) + "\n")
+
+
+def number(value: float | None, digits: int = 4) -> str:
+    return "" if value is None else f"{value:.{digits}f}"
+
+
+def ledger(db: str | None):  # type: ignore[no-untyped-def]
+    from registry.storage.ledger import Ledger
+
+    return Ledger.open(db)
+
+
+CAUTION = (
+    "Caution: where a prior informs decisions about people (trial design, regulatory "
+    "submissions), borrowing must be pre-specified, its operating characteristics checked, "
+    "and local regulations and qualified statistical review followed."
+)

@@ -1,0 +1,1 @@
+"""Prior construction: definitions, discounting, effective sample size, built priors."""

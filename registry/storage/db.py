@@ -1,0 +1,107 @@
+"""Where the registry lives, and bringing its schema up to date with Alembic.
+
+The location is `--db URL_OR_PATH`, else `PRIORLEDGER_DB`, else `./priorledger.db`; a bare
+path is a SQLite file. Migrations are applied by `priorledger init` and on first use of an
+empty registry; a registry whose schema is older than this version is upgraded the same way.
+"""
+
+from __future__ import annotations
+
+import os
+from collections.abc import Iterator
+from contextlib import contextmanager
+from importlib import resources
+from pathlib import Path
+
+from sqlalchemy import Engine, create_engine, event, inspect
+from sqlalchemy.orm import Session, sessionmaker
+
+from registry.errors import InputError
+
+DEFAULT_PATH = "priorledger.db"
+
+
+def resolve_url(db: str | None = None) -> str:
+    """The SQLAlchemy URL for `db`, `PRIORLEDGER_DB` or the default file."""
+    target = db or os.environ.get("PRIORLEDGER_DB") or DEFAULT_PATH
+    if "://" in target:
+        return target
+    path = Path(target).expanduser()
+    if path.is_dir():
+        raise InputError(f"{path} is a folder; give a registry file or URL", field="--db")
+    return f"sqlite:///{path.resolve()}"
+
+
+def _sqlite_pragmas(dbapi_connection, _record) -> None:  # type: ignore[no-untyped-def]
+    cursor = dbapi_connection.cursor()
+    cursor.execute("PRAGMA foreign_keys = ON")
+    cursor.close()
+
+
+def make_engine(url: str) -> Engine:
+    engine = create_engine(url)
+    if engine.dialect.name == "sqlite":
+        event.listen(engine, "connect", _sqlite_pragmas)
+    return engine
+
+
+def _alembic_config():  # type: ignore[no-untyped-def]
+    from alembic.config import Config
+
+    config = Config()
+    config.set_main_option("script_location", str(resources.files("registry.migrations")))
+    return config
+
+
+def head_revision() -> str:
+    from alembic.script import ScriptDirectory
+
+    head = ScriptDirectory.from_config(_alembic_config()).get_current_head()
+    assert head is not None  # the package always ships at least one migration
+    return head
+
+
+def current_revision(engine: Engine) -> str | None:
+    from alembic.runtime.migration import MigrationContext
+
+    with engine.connect() as connection:
+        return MigrationContext.configure(connection).get_current_revision()
+
+
+def upgrade(engine: Engine) -> None:
+    """Apply every migration not yet applied, in one transaction."""
+    from alembic import command
+
+    config = _alembic_config()
+    with engine.begin() as connection:
+        config.attributes["connection"] = connection
+        command.upgrade(config, "head")
+
+
+def ensure_schema(engine: Engine) -> None:
+    """Migrate an empty or older registry; a registry newer than this version is refused."""
+    current = current_revision(engine)
+    if current == head_revision():
+        return
+    if current is None and inspect(engine).get_table_names():
+        raise InputError(
+            "the database has tables but is not a priorledger registry; give another --db",
+            field="--db",
+        )
+    upgrade(engine)
+
+
+@contextmanager
+def transaction(factory: sessionmaker[Session], *, commit: bool = True) -> Iterator[Session]:
+    """A session whose work is committed together or not at all (never, with commit=False)."""
+    with factory() as session:
+        outer = session.begin()
+        try:
+            yield session
+        except BaseException:
+            outer.rollback()
+            raise
+        if commit:
+            outer.commit()
+        else:
+            outer.rollback()
