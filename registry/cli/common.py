@@ -14,7 +14,7 @@ DbOption = Annotated[
     typer.Option(
         "--db",
         envvar="PRIORLEDGER_DB",
-        help="Registry: a SQLAlchemy URL or a SQLite file path [default: ./priorledger.db].",
+        help="Registry: a SQLAlchemy URL or a SQLite file path (default: ./priorledger.db).",
         show_default=False,
     ),
 ]

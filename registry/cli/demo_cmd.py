@@ -15,11 +15,11 @@ from registry.cli.registry_cmds import entries_table
 def demo(
     db: Annotated[
         str | None,
-        typer.Option("--db", help="Registry to build the demo in [default: a new temporary file]."),
+        typer.Option("--db", help="Registry to build the demo in (default: a new temporary file)."),
     ] = None,
     out_dir: Annotated[
         Path | None,
-        typer.Option("--out", help="Folder for the demo's figures [default: beside the registry]."),
+        typer.Option("--out", help="Folder for the demo's figures (default: beside the registry)."),
     ] = None,
 ) -> None:
     """Build a registry from the invented demo scenario and show what it holds.

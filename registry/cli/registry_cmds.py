@@ -3,17 +3,19 @@
 from __future__ import annotations
 
 from pathlib import Path
-from typing import Annotated
+from typing import TYPE_CHECKING, Annotated
 
 import typer
 from rich.table import Table
 
 from registry.cli.common import DbOption, JsonOption, err, ledger, number, out, print_json
 from registry.errors import InputError
-from registry.storage.ledger import EntryView
 
-sources_app = typer.Typer(help="List, import and retract sources.", no_args_is_help=False)
-entries_app = typer.Typer(help="List entries, or show one with its revision history.")
+if TYPE_CHECKING:
+    from registry.storage.ledger import EntryView
+
+sources_app = typer.Typer()
+entries_app = typer.Typer()
 
 
 def init(db: DbOption = None) -> None:
