@@ -12,7 +12,7 @@ from typing import Annotated
 import typer
 
 from registry import __version__
-from registry.cli import demo_cmd, registry_cmds
+from registry.cli import demo_cmd, pool_cmd, registry_cmds
 from registry.errors import LedgerError
 
 app = typer.Typer(
@@ -45,6 +45,7 @@ app.command("import")(registry_cmds.import_sheet)
 app.add_typer(registry_cmds.sources_app, name="sources")
 app.add_typer(registry_cmds.entries_app, name="entries")
 app.command("revise")(registry_cmds.revise)
+app.command("pool")(pool_cmd.pool)
 app.command("demo")(demo_cmd.demo)
 
 
