@@ -214,3 +214,39 @@ class Prior:
                 for e in doc.get("entries", [])
             ),
         )
+
+    def to_stan(self, param: str | None = None) -> str:
+        """A complete Stan program with this prior (see `registry.emit`)."""
+        from registry.emit import emit
+
+        return emit(self, "stan", param=param)
+
+    def to_jags(self, param: str | None = None) -> str:
+        """JAGS statements for inside ``model { }`` (see `registry.emit`)."""
+        from registry.emit import emit
+
+        return emit(self, "jags", param=param)
+
+    def to_pymc(self, param: str | None = None) -> str:
+        """PyMC lines for inside ``with pm.Model():`` (see `registry.emit`)."""
+        from registry.emit import emit
+
+        return emit(self, "pymc", param=param)
+
+    def to_numpyro(self, param: str | None = None) -> str:
+        """NumPyro lines for inside a model function (see `registry.emit`)."""
+        from registry.emit import emit
+
+        return emit(self, "numpyro", param=param)
+
+    def to_brms(self, param: str | None = None) -> str:
+        """A brms-style ``prior(...)`` statement (see `registry.emit`)."""
+        from registry.emit import emit
+
+        return emit(self, "brms", param=param)
+
+    def to_json(self) -> str:
+        """The versioned JSON document that `registry.emit.load_json` reads back."""
+        from registry.emit import emit
+
+        return emit(self, "json")

@@ -1,0 +1,101 @@
+"""What every emitted snippet shares: number literals, argument lists and the header comment."""
+
+from __future__ import annotations
+
+import shlex
+import textwrap
+from collections.abc import Callable, Mapping
+
+from registry import __version__
+from registry.emit.names import sanitize
+from registry.evidence.scales import ANALYSIS_SCALE, MEANING, NATURAL_NAME, to_natural
+from registry.priors.value import Component, Prior
+
+# family -> (the language's function name, the scipy parameters as that language's arguments)
+Forms = Mapping[str, tuple[str, Callable[[Mapping[str, float]], dict[str, float]]]]
+
+CAUTION = (
+    "Caution: where this prior informs decisions about people (trial design, regulatory "
+    "submissions), the borrowing must be pre-specified, its operating characteristics "
+    "checked, and local regulations and qualified statistical review followed."
+)
+
+# Meanings of the two natural scales, which have no measure of their own in MEANING.
+_NATURAL_MEANING = {
+    "probability": "probability, on its natural scale",
+    "rate": "event rate (events per unit of exposure), on its natural scale",
+}
+
+
+def literal(x: float) -> str:
+    """The shortest decimal that reads back as the same double (valid in all five languages)."""
+    return repr(float(x))
+
+
+def arguments(forms: Forms, component: Component) -> tuple[str, dict[str, float]]:
+    """The language's function name and named arguments for one component."""
+    function, convert = forms[component.family]
+    return function, convert(component.params)
+
+
+def positional(args: Mapping[str, float]) -> str:
+    return ", ".join(literal(v) for v in args.values())
+
+
+def keywords(args: Mapping[str, float]) -> str:
+    return ", ".join(f"{k}={literal(v)}" for k, v in args.items())
+
+
+def meaning(prior: Prior) -> str:
+    """What a value of the parameter is, on the prior's scale."""
+    if prior.measure in MEANING and ANALYSIS_SCALE.get(prior.measure) == prior.scale:
+        return MEANING[prior.measure]
+    return _NATURAL_MEANING.get(prior.scale, f"value on the {prior.scale} scale")
+
+
+def has_natural(prior: Prior) -> bool:
+    """Whether the parameter sits on a transformed scale with a natural scale to go back to."""
+    return prior.scale in NATURAL_NAME and prior.scale != "identity"
+
+
+def _describe(c: Component) -> str:
+    params = ", ".join(f"{k}={v:.6g}" for k, v in c.params.items())
+    return f"{c.family}({params})"
+
+
+def header(prior: Prior, language: str, param: str, natural: str | None) -> list[str]:
+    """The header as lines of comment text, each already safe for a line comment.
+
+    The first two lines are fixed text, so that nothing a user typed can land where Python
+    reads an encoding declaration (PEP 263).
+    """
+    q = [prior.ppf(p) for p in (0.025, 0.5, 0.975)]
+    mixture = " + ".join(f"{c.weight:.6g} x {_describe(c)}" if prior.is_mixture
+                         else _describe(c) for c in prior.components)
+    lines = [
+        f"Prior emitted by priorledger {__version__} for {language}.",
+        "Generated code: to change a number, rebuild the prior and emit it again.",
+        f"prior: {prior.name} version {prior.version}",
+        f"digest: {prior.digest}",
+        f"analysis scale: {prior.scale}; {param} is the {meaning(prior)}",
+    ]
+    if prior.parameter:
+        lines.append(f"parameter: {prior.parameter}")
+    lines += [
+        f"distribution (scipy.stats parameters): {mixture}",
+        f"mean {prior.mean():.4g}, sd {prior.var() ** 0.5:.4g}, median {q[1]:.4g}, "
+        f"95% interval [{q[0]:.4g}, {q[2]:.4g}]",
+    ]
+    if natural is not None:
+        nq = [to_natural(prior.scale, x) for x in q]
+        lines.append(
+            f"natural scale ({NATURAL_NAME[prior.scale]}): {natural}, median {nq[1]:.4g}, "
+            f"95% interval [{nq[0]:.4g}, {nq[2]:.4g}]"
+        )
+    lines += [f"trace: priorledger trace {shlex.quote(prior.label)}", CAUTION]
+    return [part for line in lines
+            for part in textwrap.wrap(sanitize(line, limit=400), 92, break_on_hyphens=False)]
+
+
+def comment_block(lines: list[str], marker: str) -> list[str]:
+    return [f"{marker} {line}" for line in lines]
