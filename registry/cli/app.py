@@ -12,7 +12,7 @@ from typing import Annotated
 import typer
 
 from registry import __version__
-from registry.cli import demo_cmd, pool_cmd, registry_cmds
+from registry.cli import demo_cmd, pool_cmd, prior_cmds, registry_cmds
 from registry.errors import LedgerError
 
 app = typer.Typer(
@@ -46,6 +46,15 @@ app.add_typer(registry_cmds.sources_app, name="sources")
 app.add_typer(registry_cmds.entries_app, name="entries")
 app.command("revise")(registry_cmds.revise)
 app.command("pool")(pool_cmd.pool)
+for command in (
+    prior_cmds.build,
+    prior_cmds.priors,
+    prior_cmds.prior,
+    prior_cmds.verify,
+    prior_cmds.trace,
+    prior_cmds.emit,
+):
+    app.command(command.__name__)(command)
 app.command("demo")(demo_cmd.demo)
 
 

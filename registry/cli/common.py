@@ -45,3 +45,15 @@ CAUTION = (
     "submissions), borrowing must be pre-specified, its operating characteristics checked, "
     "and local regulations and qualified statistical review followed."
 )
+
+# Options that select entries, shared by `entries` and `pool`.
+QuantityOption = Annotated[str | None, typer.Option("--quantity", help="Only this quantity.")]
+MeasureOption = Annotated[str | None, typer.Option("--measure", help="Only this measure.")]
+TagOption = Annotated[
+    list[str] | None,
+    typer.Option("--tag", help="Only entries with this tag (repeat for all of several)."),
+]
+SourceOption = Annotated[
+    list[str] | None, typer.Option("--source", help="Only entries from this source (repeatable).")
+]
+IdOption = Annotated[list[int] | None, typer.Option("--id", help="Only this entry (repeatable).")]

@@ -7,18 +7,22 @@ from typing import Annotated, Any
 
 import typer
 
-from registry.cli.common import DbOption, JsonOption, err, ledger, out, print_json
+from registry.cli.common import (
+    DbOption,
+    IdOption,
+    JsonOption,
+    MeasureOption,
+    QuantityOption,
+    SourceOption,
+    TagOption,
+    err,
+    ledger,
+    out,
+    print_json,
+)
 
 # Measures of a level rather than a contrast: a forest plot draws no line of no effect.
 LEVEL_MEASURES = ("proportion", "rate", "mean")
-
-Selection = {
-    "quantity": Annotated[str | None, typer.Option(help="Entries of this quantity.")],
-    "measure": Annotated[str | None, typer.Option(help="Only this measure.")],
-    "tag": Annotated[list[str] | None, typer.Option(help="Only entries with this tag (repeatable: all of them).")],
-    "source": Annotated[list[str] | None, typer.Option(help="Only entries from this source (repeatable).")],
-    "entry": Annotated[list[int] | None, typer.Option("--id", help="Only this entry id (repeatable).")],
-}
 
 
 def _interval(pair: Any, scale: str) -> str:
@@ -34,17 +38,25 @@ def _interval(pair: Any, scale: str) -> str:
 
 
 def pool(
-    quantity: Selection["quantity"] = None,
-    measure: Selection["measure"] = None,
-    tag: Selection["tag"] = None,
-    source: Selection["source"] = None,
-    entry: Selection["entry"] = None,
+    quantity: QuantityOption = None,
+    measure: MeasureOption = None,
+    tag: TagOption = None,
+    source: SourceOption = None,
+    entry: IdOption = None,
     method: Annotated[str, typer.Option(help="common, dl, pm, reml, ml or bayes.")] = "reml",
-    likelihood: Annotated[str, typer.Option(help="normal, or exact (count likelihood; bayes only).")] = "normal",
-    tau_prior: Annotated[str, typer.Option(help="bayes: half-normal:S, half-t:S,DF or log-normal:M,S.")] = "half-normal:0.5",
+    likelihood: Annotated[
+        str, typer.Option(help="normal, or exact (count likelihood; bayes only).")
+    ] = "normal",
+    tau_prior: Annotated[
+        str, typer.Option(help="bayes: half-normal:S, half-t:S,DF or log-normal:M,S.")
+    ] = "half-normal:0.5",
     mu_prior: Annotated[str, typer.Option(help="bayes: flat or normal:MEAN,SD.")] = "flat",
-    hksj: Annotated[bool, typer.Option("--hksj", help="Hartung-Knapp-Sidik-Jonkman interval.")] = False,
-    plot: Annotated[Path | None, typer.Option(help="Write a forest plot (.png, .pdf or .svg).")] = None,
+    hksj: Annotated[
+        bool, typer.Option("--hksj", help="Hartung-Knapp-Sidik-Jonkman interval.")
+    ] = False,
+    plot: Annotated[
+        Path | None, typer.Option(help="Write a forest plot (.png, .pdf or .svg).")
+    ] = None,
     db: DbOption = None,
     as_json: JsonOption = False,
 ) -> None:
@@ -54,20 +66,35 @@ def pool(
     """
     from registry.priors.selection import pool_entries, repeated_studies
 
-    entries = ledger(db).entries(quantity=quantity, measure=measure, tags=tag or (),
-                                 sources=source or (), ids=entry or ())
+    entries = ledger(db).entries(
+        quantity=quantity, measure=measure, tags=tag or (), sources=source or (), ids=entry or ()
+    )
     for study, ids in repeated_studies(entries).items():
-        err.print(f"warning: study {study} is reported by entries {ids}; it counts more than "
-                  "once here (a prior definition must choose one)")
-    result = pool_entries(entries, method=method, likelihood=likelihood, tau_prior=tau_prior,
-                          mu_prior=mu_prior, hksj=hksj)
+        err.print(
+            f"warning: study {study} is reported by entries {ids}; it counts more than "
+            "once here (a prior definition must choose one)"
+        )
+    result = pool_entries(
+        entries,
+        method=method,
+        likelihood=likelihood,
+        tau_prior=tau_prior,
+        mu_prior=mu_prior,
+        hksj=hksj,
+    )
     if plot is not None:
         from registry.report.forest import forest_plot
 
-        written = forest_plot(plot, [e.source for e in entries], [e.y for e in entries],
-                              [e.se for e in entries], result, scale=entries[0].scale,
-                              title=quantity or None,
-                              no_effect_line=entries[0].measure not in LEVEL_MEASURES)
+        written = forest_plot(
+            plot,
+            [e.source for e in entries],
+            [e.y for e in entries],
+            [e.se for e in entries],
+            result,
+            scale=entries[0].scale,
+            title=quantity or None,
+            no_effect_line=entries[0].measure not in LEVEL_MEASURES,
+        )
         err.print(f"forest plot written to {written}")
     if as_json:
         print_json({**result.to_dict(), "entries": [e.id for e in entries]})
@@ -82,16 +109,20 @@ def render(result: Any, scale: str) -> None:
     natural = "" if scale == "identity" else f" (natural {to_natural(scale, result.mu):.4g})"
     out.print(f"[bold]{result.method}[/bold] pooling of k = {result.k} on the {scale} scale")
     out.print(f"  mu          {result.mu:.4f}{natural}, se {result.se:.4f}")
-    out.print(f"  95% {'CrI' if result.method == 'bayes' else 'CI '}     "
-              f"{_interval(result.ci, scale)}")
+    out.print(
+        f"  95% {'CrI' if result.method == 'bayes' else 'CI '}     {_interval(result.ci, scale)}"
+    )
     tau2 = "not estimable" if result.tau2 is None else f"{result.tau2:.4f}"
     i2 = "" if result.i2 is None else f", I² {result.i2:.1f}%"
     out.print(f"  tau²        {tau2}{i2}, Q {result.q:.3f}")
     out.print(f"  prediction  {_interval(result.prediction, scale)}")
     predictive = getattr(result, "predictive", None)
     if predictive is not None:
-        quantiles = ", ".join(f"{k}: {v:.4f}" for k, v in predictive.quantiles.items()
-                              if k in ("0.025", "0.5", "0.975"))
+        quantiles = ", ".join(
+            f"{k}: {v:.4f}"
+            for k, v in predictive.quantiles.items()
+            if k in ("0.025", "0.5", "0.975")
+        )
         out.print(f"  predictive  mean {predictive.mean:.4f}, sd {predictive.sd:.4f}; {quantiles}")
     for note in getattr(result, "notes", ()):
         out.print(f"  note: {note}")

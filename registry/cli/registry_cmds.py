@@ -8,7 +8,19 @@ from typing import TYPE_CHECKING, Annotated
 import typer
 from rich.table import Table
 
-from registry.cli.common import DbOption, JsonOption, err, ledger, number, out, print_json
+from registry.cli.common import (
+    DbOption,
+    JsonOption,
+    MeasureOption,
+    QuantityOption,
+    SourceOption,
+    TagOption,
+    err,
+    ledger,
+    number,
+    out,
+    print_json,
+)
 from registry.errors import InputError
 
 if TYPE_CHECKING:
@@ -116,15 +128,10 @@ def sources_retract(
 @entries_app.callback(invoke_without_command=True)
 def entries_list(
     ctx: typer.Context,
-    quantity: Annotated[str | None, typer.Option(help="Only this quantity.")] = None,
-    measure: Annotated[str | None, typer.Option(help="Only this measure.")] = None,
-    tag: Annotated[
-        list[str] | None,
-        typer.Option(help="Only entries with this tag (repeat for all of several)."),
-    ] = None,
-    source: Annotated[
-        list[str] | None, typer.Option(help="Only entries from this source (repeatable).")
-    ] = None,
+    quantity: QuantityOption = None,
+    measure: MeasureOption = None,
+    tag: TagOption = None,
+    source: SourceOption = None,
     db: DbOption = None,
     as_json: JsonOption = False,
 ) -> None:

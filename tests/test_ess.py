@@ -1,0 +1,305 @@
+"""Effective sample size.
+
+References (values recalled from memory where marked): Morita, Thall & Mueller (2008,
+Biometrics 64:595): ESS of Beta(a, b) is a + b, of Gamma(shape a, rate b) for Poisson data
+is b, of N(m, s^2) for normal data with sd s_u is s_u^2/s^2 (recalled). Neuenschwander,
+Weber, Schmidli & O'Hagan (2020, Biometrics 76:578): the expected local information ratio
+gives the same values in these cases and is predictively consistent: the expected ESS of
+the posterior after n units equals the prior's ESS plus n (recalled). Moments of the
+Student-t and lognormal are handbook formulas (Johnson, Kotz & Balakrishnan, Continuous
+Univariate Distributions); scipy is the numerical reference.
+"""
+
+from __future__ import annotations
+
+import itertools
+import math
+
+import numpy as np
+import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+from scipy import integrate, special, stats
+
+from registry.errors import InputError, NumericalError
+from registry.priors.ess import (
+    data_model,
+    ess,
+    ess_all,
+    information_shares,
+    solve_power_for_cap,
+)
+from registry.priors.update import robustify, unit_information_component, update_beta
+from registry.priors.value import Component, Prior
+
+METHODS = ("moment", "morita", "elir")
+
+
+def prior(scale: str, *components: Component) -> Prior:
+    return Prior("test", 1, "digest", scale, components)
+
+
+# --- conjugate families: every method gives the standard ESS ------------------------------------
+
+@pytest.mark.parametrize("method", METHODS)
+@pytest.mark.parametrize(("a", "b"), [(3.0, 7.0), (12.5, 40.0), (0.5, 0.5), (1.0, 1.0)])
+def test_beta_ess_is_a_plus_b(method: str, a: float, b: float) -> None:
+    """Morita et al. (2008); Neuenschwander et al. (2020): Beta(a, b) has ESS a + b."""
+    result = ess(prior("probability", Component("beta", {"a": a, "b": b})), method=method)
+    assert result.value == pytest.approx(a + b, rel=1e-6)
+    assert result.unit == "participants"
+
+
+@pytest.mark.parametrize("method", METHODS)
+@pytest.mark.parametrize(("s", "s_u"), [(0.5, 2.0), (0.1, 1.0), (3.0, 1.5)])
+def test_normal_ess_is_unit_variance_over_variance(method: str, s: float, s_u: float) -> None:
+    """Morita et al. (2008); Neuenschwander et al. (2020): N(m, s^2) with unit sd s_u has
+    ESS s_u^2 / s^2."""
+    p = prior("identity", Component("normal", {"loc": 0.7, "scale": s}))
+    assert ess(p, method=method, unit_sd=s_u).value == pytest.approx(s_u**2 / s**2, rel=1e-6)
+
+
+@pytest.mark.parametrize("method", METHODS)
+@pytest.mark.parametrize(("shape", "rate"), [(4.0, 20.0), (0.8, 2.5), (30.0, 100.0)])
+def test_gamma_ess_is_its_rate(method: str, shape: float, rate: float) -> None:
+    """Gamma(shape, rate) for a Poisson rate per unit exposure has ESS = rate, in units of
+    exposure (Morita et al. 2008; Neuenschwander et al. 2020, recalled)."""
+    p = prior("rate", Component("gamma", {"a": shape, "scale": 1.0 / rate}))
+    result = ess(p, method=method)
+    assert result.value == pytest.approx(rate, rel=1e-6)
+    assert result.unit == "units of exposure"
+
+
+# --- non-conjugate priors against closed forms from handbook moments -------------------------
+
+def test_student_t_prior() -> None:
+    """t(nu, m, s) with normal data of sd s_u.
+    moment: var = s^2 nu/(nu-2) (handbook), so ESS = s_u^2 (nu-2)/(nu s^2);
+    morita: curvature at the centre (nu+1)/(nu s^2);
+    elir: E_prior[-d2 log p] is the Fisher information of the t location family,
+    (nu+1)/((nu+3) s^2) (Lange, Little & Taylor 1989, JASA 84:881, recalled); so
+    ESS = s_u^2 (nu+1)/((nu+3) s^2). Neuenschwander et al. (2020) use this case to show
+    that the curvature at the centre overstates the ESS."""
+    nu, s, s_u = 5.0, 0.5, 2.0
+    p = prior("identity", Component("student_t", {"df": nu, "loc": 1.0, "scale": s}))
+    values = ess_all(p, unit_sd=s_u)
+    assert values["moment"] == pytest.approx(s_u**2 * (nu - 2) / (nu * s**2), rel=1e-9)
+    assert values["morita"] == pytest.approx(s_u**2 * (nu + 1) / (nu * s**2), rel=1e-9)
+    assert values["elir"] == pytest.approx(s_u**2 * (nu + 1) / ((nu + 3) * s**2), rel=1e-6)
+    assert values["elir"] < values["morita"]
+
+
+def test_normal_prior_on_logit_scale() -> None:
+    """N(mu, s^2) on logit p, binomial data. i_F = p(1-p), so the ELIR is
+    E[1/(p(1-p))]/s^2 = (2 + E e^phi + E e^-phi)/s^2, with E e^{+-phi} = e^{+-mu + s^2/2}
+    (lognormal mean, handbook). Moment matching uses s_u^2 = 1/(p(1-p)) at the prior mean."""
+    mu, s = -1.0, 0.4
+    p = prior("logit", Component("normal", {"loc": mu, "scale": s}))
+    values = ess_all(p)
+    expected = (2 + math.exp(mu + s * s / 2) + math.exp(-mu + s * s / 2)) / s**2
+    assert values["elir"] == pytest.approx(expected, rel=1e-6)
+    pm = special.expit(mu)
+    assert values["moment"] == pytest.approx(1 / (pm * (1 - pm) * s * s), rel=1e-9)
+
+
+def test_lognormal_prior_on_a_rate() -> None:
+    """lognormal(mu, s) on a Poisson rate. ELIR on log lambda: E[e^-phi]/s^2 with
+    E e^-phi = e^{-mu + s^2/2}; moment matching to a gamma: m/v with the lognormal moments
+    m = e^{mu + s^2/2}, v = (e^{s^2} - 1) e^{2 mu + s^2} (handbook)."""
+    mu, s = math.log(2.0), 0.3
+    p = prior("rate", Component("lognormal", {"s": s, "scale": math.exp(mu)}))
+    values = ess_all(p)
+    assert values["elir"] == pytest.approx(math.exp(-mu + s * s / 2) / s**2, rel=1e-6)
+    m, v = math.exp(mu + s * s / 2), (math.exp(s * s) - 1) * math.exp(2 * mu + s * s)
+    assert values["moment"] == pytest.approx(m / v, rel=1e-9)
+
+
+# --- mixtures -----------------------------------------------------------------------------
+
+def _curvature_fd(logpdf, x: float, h: float) -> float:
+    """-d2/dx2 log p by a central difference of a scipy log density."""
+    return -(logpdf(x + h) - 2 * logpdf(x) + logpdf(x - h)) / h**2
+
+
+@pytest.mark.parametrize("components", [
+    (Component("normal", {"loc": 0.0, "scale": 0.3}, 0.6),
+     Component("normal", {"loc": 0.8, "scale": 1.0}, 0.4)),
+    (Component("student_t", {"df": 3.0, "loc": -0.2, "scale": 0.25}, 0.7),
+     Component("normal", {"loc": 0.5, "scale": 1.5}, 0.3)),
+])
+def test_elir_of_mixture_against_direct_quadrature(components: tuple) -> None:
+    """ELIR = E_p[i_p / i_F] (Neuenschwander et al. 2020), computed here independently
+    with scipy's log densities, finite differences and quad over theta."""
+    s_u = 2.0
+    dists = [(math.log(c.weight), c.frozen()) for c in components]
+
+    def logpdf(x: float) -> float:
+        return float(special.logsumexp([lw + d.logpdf(x) for lw, d in dists]))
+
+    def integrand(x: float) -> float:
+        return math.exp(logpdf(x)) * _curvature_fd(logpdf, x, 1e-4) * s_u**2
+
+    reference = integrate.quad(integrand, -40, 40, points=[-0.2, 0.0, 0.5, 0.8], limit=400)[0]
+    p = prior("identity", *components)
+    assert ess(p, method="elir", unit_sd=s_u).value == pytest.approx(reference, rel=1e-5)
+
+
+@pytest.mark.parametrize(("scale", "components"), [
+    ("probability", (Component("beta", {"a": 20.0, "b": 60.0}, 0.7),
+                     Component("beta", {"a": 0.25, "b": 0.75}, 0.3))),
+    ("rate", (Component("gamma", {"a": 40.0, "scale": 0.01}, 0.5),
+              Component("lognormal", {"s": 0.3, "scale": 0.45}, 0.5))),
+])
+def test_morita_curvature_on_the_prior_scale(scale: str, components: tuple) -> None:
+    """Morita et al. (2008): ESS = (D_p - D_0)/i_F at the prior mean. D_p is recomputed
+    here by finite differences of scipy's log densities on the prior's own scale; D_0, the
+    epsilon-information limit, is -1/x^2 - 1/(1-x)^2 on (0, 1) and -1/x^2 on (0, inf)
+    (derived from the beta and gamma log densities)."""
+    p = prior(scale, *components)
+    x = p.mean()
+
+    def logpdf(t: float) -> float:
+        return float(p.logpdf(np.array([t]))[0])
+
+    d_p = _curvature_fd(logpdf, x, 1e-4 * x)
+    if scale == "probability":
+        d_0, i_f = -1 / x**2 - 1 / (1 - x) ** 2, 1 / (x * (1 - x))
+    else:
+        d_0, i_f = -1 / x**2, 1 / x
+    assert ess(p, method="morita").value == pytest.approx((d_p - d_0) / i_f, rel=1e-5)
+
+
+def test_morita_is_zero_where_the_mean_sits_in_a_trough() -> None:
+    """Two separated normals: the log density is convex at the mean (checked with scipy), so
+    the ESS of Morita et al. (2008), minimised over m >= 0, is 0; we say so."""
+    p = prior("identity", Component("normal", {"loc": -3.0, "scale": 0.5}, 0.5),
+              Component("normal", {"loc": 3.0, "scale": 0.5}, 0.5))
+    assert _curvature_fd(lambda t: float(p.logpdf(np.array([t]))[0]), 0.0, 1e-4) < 0
+    values = ess_all(p, unit_sd=1.0)
+    assert values["morita"] == 0.0
+    assert "m = 0" in values["notes"]["morita"]
+    assert values["elir"] > 0
+
+
+@pytest.mark.parametrize(("scale", "informative", "vague"), [
+    ("probability", Component("beta", {"a": 30.0, "b": 70.0}),
+     unit_information_component(0.3, None, "beta", "probability")),
+    ("identity", Component("normal", {"loc": 0.0, "scale": 0.2}),
+     unit_information_component(0.0, 2.0, "normal", "identity")),
+    ("rate", Component("gamma", {"a": 50.0, "scale": 0.01}),
+     unit_information_component(0.5, None, "gamma", "rate")),
+])
+def test_elir_of_robust_mixture_falls_as_vague_weight_rises(scale: str, informative: Component,
+                                                           vague: Component) -> None:
+    """Neuenschwander et al. (2020) discuss robust mixtures (Schmidli et al. 2014): more vague
+    weight, less information. The ELIR must fall strictly along a grid of weights, from the
+    informative component's ESS towards the vague component's one unit."""
+    unit_sd = 2.0 if scale == "identity" else None
+    full = ess(prior(scale, informative), method="elir", unit_sd=unit_sd).value
+    values = [ess(prior(scale, *robustify((informative,), vague, w)), method="elir",
+                  unit_sd=unit_sd).value for w in (0.01, 0.1, 0.2, 0.4, 0.6, 0.8, 0.95, 0.999)]
+    assert all(later < earlier for earlier, later in itertools.pairwise(values))
+    assert values[0] < full
+    assert values[-1] == pytest.approx(1.0, abs=0.05)
+
+
+def test_elir_is_predictively_consistent_for_a_beta_mixture() -> None:
+    """Neuenschwander et al. (2020), recalled: E over the prior predictive of the posterior's
+    ELIR after n participants equals the prior's ELIR + n. The predictive probabilities are
+    scipy's beta-binomial pmf; the exact sum over x = 0..n."""
+    components = (Component("beta", {"a": 6.0, "b": 14.0}, 0.8),
+                  Component("beta", {"a": 0.3, "b": 0.7}, 0.2))
+    n = 15
+    x = np.arange(n + 1)
+    pmf = sum(c.weight * stats.betabinom.pmf(x, n, c.params["a"], c.params["b"])
+              for c in components)
+    expected_posterior = sum(
+        float(pmf[k]) * ess(prior("probability", *update_beta(components, k, n)),
+                            method="elir").value for k in range(n + 1))
+    prior_elir = ess(prior("probability", *components), method="elir").value
+    assert expected_posterior == pytest.approx(prior_elir + n, rel=1e-5)
+
+
+def test_methods_that_cannot_apply_say_why() -> None:
+    p = prior("logit", Component("student_t", {"df": 4.0, "loc": 0.0, "scale": 1.0}))
+    with pytest.raises(NumericalError, match="moment"):
+        ess(p, method="elir")
+    values = ess_all(p)
+    assert values["elir"] is None and "diverges" in values["notes"]["elir"]
+    assert values["moment"] > 0
+    heavy = prior("identity", Component("student_t", {"df": 2.0, "loc": 0.0, "scale": 1.0}))
+    assert ess_all(heavy, unit_sd=1.0)["moment"] is None
+
+
+def test_data_model_needs_to_be_said_where_the_scale_is_ambiguous() -> None:
+    p = prior("log", Component("normal", {"loc": 0.0, "scale": 0.3}))
+    with pytest.raises(InputError) as info:
+        ess(p, method="moment")
+    assert info.value.field == "unit_sd"
+    assert ess(p, method="moment", likelihood="poisson").unit == "units of exposure"
+    with pytest.raises(InputError):
+        data_model("probability", unit_sd=1.0)
+    with pytest.raises(InputError):
+        data_model("rate", likelihood="binomial")
+    assert data_model("fisher_z").unit_sd == 1.0
+    beta_on_logit = prior("logit", Component("normal", {"loc": 0.0, "scale": 1.0}))
+    assert ess(beta_on_logit, method="moment", unit="patients").unit == "patients"
+
+
+# --- the cap and the shares --------------------------------------------------------------
+
+@settings(max_examples=80, deadline=None, derandomize=True)
+@given(ses=st.lists(st.floats(0.02, 2.0), min_size=1, max_size=8),
+       tau2=st.floats(0.0, 0.5), s_u=st.floats(0.5, 4.0), fraction=st.floats(0.01, 0.99))
+def test_cap_is_met_within_one_percent(ses: list[float], tau2: float, s_u: float,
+                                       fraction: float) -> None:
+    """A common global power weight a on every entry of a normal random-effects pool: the
+    prior variance is 1 / sum_i 1/(se_i^2/a + tau^2) (inverse-variance pooling, common
+    practice), its ESS s_u^2 / variance. Solve for the cap; check the cap within 1%."""
+    def ess_of_power(a: float) -> float:
+        return s_u**2 * sum(1.0 / (se**2 / a + tau2) for se in ses)
+
+    cap = fraction * ess_of_power(1.0)
+    a = solve_power_for_cap(ess_of_power, cap)
+    assert 0 < a < 1
+    assert ess_of_power(a) == pytest.approx(cap, rel=0.01)
+
+
+def test_cap_on_a_robust_mixture_by_elir() -> None:
+    """The cap met through the ESS of the finished prior: a power weight a on a normal
+    summary N(m, se^2) gives N(m, se^2/a), then robustified with 20% vague weight."""
+    vague = unit_information_component(0.0, 2.0, "normal", "identity")
+
+    def ess_of_power(a: float) -> float:
+        informative = Component("normal", {"loc": 0.0, "scale": 0.1 / math.sqrt(a)})
+        return ess(prior("identity", *robustify((informative,), vague, 0.2)),
+                   method="elir", unit_sd=2.0).value
+
+    a = solve_power_for_cap(ess_of_power, 50.0)
+    assert ess_of_power(a) == pytest.approx(50.0, rel=0.01)
+    assert solve_power_for_cap(ess_of_power, 1e6) == 1.0
+
+
+def test_cap_that_cannot_be_met_is_an_error() -> None:
+    with pytest.raises(NumericalError, match="cap"):
+        solve_power_for_cap(lambda a: 100.0, 50.0)  # no weight lowers this ESS
+    with pytest.raises(NumericalError, match="smoothly"):
+        solve_power_for_cap(lambda a: 100.0 if a > 0.5 else 10.0, 50.0)  # a jump over the cap
+    with pytest.raises(InputError):
+        solve_power_for_cap(lambda a: a, 0.0)
+
+
+@settings(max_examples=80, deadline=None, derandomize=True)
+@given(st.lists(st.floats(0.0, 1e6), min_size=1, max_size=30).filter(lambda v: sum(v) > 0))
+def test_shares_sum_to_one(values: list[float]) -> None:
+    shares = information_shares(values)
+    assert math.fsum(shares) == pytest.approx(1.0, abs=1e-12)
+    assert all(s >= 0 for s in shares)
+    biggest = max(range(len(values)), key=values.__getitem__)
+    assert shares[biggest] == max(shares)
+
+
+def test_shares_reject_bad_input() -> None:
+    for bad in ([], [0.0, 0.0], [1.0, -0.1], [1.0, math.inf]):
+        with pytest.raises(InputError):
+            information_shares(bad)
