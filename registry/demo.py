@@ -13,6 +13,7 @@ from registry.storage.ledger import ImportReport, Ledger, SourceImportReport
 
 SHEET = "falls-sheet.csv"
 BIBLIOGRAPHY = "falls-sources.bib"
+DEFINITIONS = ("falls-control-rate.toml", "falls-programme-effect.toml")
 
 
 def seed_path(name: str) -> Path:

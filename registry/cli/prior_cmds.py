@@ -6,6 +6,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Annotated
 
 import typer
+from rich.markup import escape
 from rich.table import Table
 from rich.tree import Tree
 
@@ -169,7 +170,7 @@ def trace(label: Label, db: DbOption = None, as_json: JsonOption = False) -> Non
 
 
 def trace_tree(doc: dict, *, short: bool = False) -> Tree:
-    """The trace as a tree; `short` keeps one line an entry."""
+    """The trace as a tree; `short` keeps one line an entry. Free text is escaped."""
     tree = Tree(f"[bold]{doc['prior']}[/bold] ({doc['scale']}) digest {doc['digest'][:16]}")
     defn = doc["definition"]
     tree.add(
@@ -189,7 +190,7 @@ def trace_tree(doc: dict, *, short: bool = False) -> Tree:
         node = tree.add(head)
         for r in e["ratings"]:
             if r["rationale"]:
-                node.add(f"{r['domain']}: {r['level']} — {r['rationale']} [{r['rule']}]")
+                node.add(escape(f"{r['domain']}: {r['level']} — {r['rationale']} [{r['rule']}]"))
         node.add(
             f"source: {source['citation'] or source['key']} doi:{source['doi'] or '-'}"
             f" at {source['location'] or '-'}"

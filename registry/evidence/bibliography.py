@@ -48,9 +48,10 @@ def _doi(text: str | None) -> str | None:
 def format_citation(
     authors: list[str], year: int | None, title: str | None, journal: str | None
 ) -> str:
-    """A plain one-line citation: Authors (year). Title. Journal."""
+    """A plain one-line citation: Authors (year). Title. Journal. (Title first if no authors.)"""
     names = "; ".join(authors) if len(authors) <= 3 else f"{authors[0]} et al."
-    parts = [f"{names} ({year})" if year else names, title, journal]
+    dated = f" ({year})" if year else ""
+    parts = [names + dated, title, journal] if names else [(title or "") + dated, journal]
     return ". ".join(p.strip().rstrip(".") for p in parts if p) + "."
 
 

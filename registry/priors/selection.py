@@ -17,8 +17,10 @@ from registry.priors.ratings import Discount, apply_normal
 
 LIKELIHOODS = ("normal", "exact")
 # measure -> (likelihood name, count fields as reported)
-COUNT_FORMS = {"proportion": ("binomial", ("events", "total")),
-               "rate": ("poisson", ("events", "exposure"))}
+COUNT_FORMS = {
+    "proportion": ("binomial", ("events", "total")),
+    "rate": ("poisson", ("events", "exposure")),
+}
 
 
 class EntryLike(Protocol):
@@ -38,8 +40,10 @@ def check_selection(entries: Sequence[EntryLike]) -> tuple[str, str]:
         raise InputError("the selection matches no entries", field="selection")
     measures = sorted({e.measure for e in entries})
     if len(measures) > 1:
-        raise InputError(f"the selection mixes measures ({', '.join(measures)}); "
-                         "select one with --measure", field="measure")
+        raise InputError(
+            f"the selection mixes measures ({', '.join(measures)}); select one with --measure",
+            field="measure",
+        )
     return measures[0], entries[0].scale
 
 
@@ -52,16 +56,21 @@ def repeated_studies(entries: Sequence[EntryLike]) -> dict[str, list[int]]:
 def counts_of(entries: Sequence[EntryLike], measure: str) -> tuple[str, list[float], list[float]]:
     """The count likelihood's name and each entry's (events, total or exposure)."""
     if measure not in COUNT_FORMS:
-        raise InputError(f"--likelihood exact needs counts of a proportion or a rate, not a "
-                         f"{measure}; use --likelihood normal", field="likelihood")
+        raise InputError(
+            f"--likelihood exact needs counts of a proportion or a rate, not a "
+            f"{measure}; use --likelihood normal",
+            field="likelihood",
+        )
     kind, fields = COUNT_FORMS[measure]
     events, sizes = [], []
     for e in entries:
         if not all(f in e.reported for f in fields):
             given = ", ".join(e.reported)
-            raise InputError(f"entry {e.id} ({e.source}) is reported as {given}, not as "
-                             f"{', '.join(fields)}; exclude it or use --likelihood normal",
-                             field="likelihood")
+            raise InputError(
+                f"entry {e.id} ({e.source}) is reported as {given}, not as "
+                f"{', '.join(fields)}; exclude it or use --likelihood normal",
+                field="likelihood",
+            )
         events.append(float(e.reported[fields[0]]))
         sizes.append(float(e.reported[fields[1]]))
     return kind, events, sizes
@@ -87,25 +96,28 @@ def pool_entries(
 
     measure, scale = check_selection(entries)
     if likelihood not in LIKELIHOODS:
-        raise InputError(f"must be one of {', '.join(LIKELIHOODS)}, got {likelihood!r}",
-                         field="likelihood")
+        raise InputError(
+            f"must be one of {', '.join(LIKELIHOODS)}, got {likelihood!r}", field="likelihood"
+        )
     discounts = list(discounts or [Discount()] * len(entries))
     if method != "bayes":
         if likelihood == "exact":
-            raise InputError("the exact count likelihood needs --method bayes",
-                             field="likelihood")
+            raise InputError("the exact count likelihood needs --method bayes", field="likelihood")
         adjusted = [apply_normal(e.y, e.se, d) for e, d in zip(entries, discounts, strict=True)]
-        return frequentist.pool([a[0] for a in adjusted], [a[1] for a in adjusted], method,
-                                hksj=hksj)
+        return frequentist.pool(
+            [a[0] for a in adjusted], [a[1] for a in adjusted], method, hksj=hksj
+        )
     if hksj:
         raise InputError("--hksj applies to the frequentist methods, not bayes", field="hksj")
     # Only the kinds of discount in use reach the fit, so its notes name only those.
     options = {
         "power": [d.power for d in discounts] if any(d.power != 1 for d in discounts) else None,
-        "bias_shift": ([d.bias_shift for d in discounts]
-                       if any(d.bias_shift for d in discounts) else None),
-        "bias_var": ([d.bias_var for d in discounts]
-                     if any(d.bias_var for d in discounts) else None),
+        "bias_shift": (
+            [d.bias_shift for d in discounts] if any(d.bias_shift for d in discounts) else None
+        ),
+        "bias_var": (
+            [d.bias_var for d in discounts] if any(d.bias_var for d in discounts) else None
+        ),
     }
     y = [e.y for e in entries]
     se = [e.se for e in entries]

@@ -29,6 +29,8 @@ def resolve_url(db: str | None = None) -> str:
     path = Path(target).expanduser()
     if path.is_dir():
         raise InputError(f"{path} is a folder; give a registry file or URL", field="--db")
+    if not path.parent.is_dir():
+        raise InputError(f"folder {path.parent} does not exist", field="--db")
     return f"sqlite:///{path.resolve()}"
 
 

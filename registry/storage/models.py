@@ -141,3 +141,37 @@ class EntryTag(Base):
 
     revision_id: Mapped[int] = mapped_column(ForeignKey("entry_revisions.id"), primary_key=True)
     tag: Mapped[str] = mapped_column(String(100), primary_key=True)
+
+
+class PriorVersion(Base):
+    """One immutable built prior `name@version`: its definition, result and digest."""
+
+    __tablename__ = "prior_versions"
+    __table_args__ = (UniqueConstraint("name", "version"),)
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    name: Mapped[str] = mapped_column(String(200), index=True)
+    version: Mapped[int] = mapped_column(Integer)
+    digest: Mapped[str] = mapped_column(String(64))
+    # The definition in canonical form, and everything the build computed from it.
+    definition: Mapped[dict] = mapped_column(JSON)
+    result: Mapped[dict] = mapped_column(JSON)
+    software_version: Mapped[str] = mapped_column(String(40))
+    created_at: Mapped[datetime] = mapped_column(DateTime(timezone=True), default=utcnow)
+
+    uses: Mapped[list[PriorEntry]] = relationship(order_by="PriorEntry.position")
+
+
+class PriorEntry(Base):
+    """An exact entry revision a prior was built from, its ratings, discount and share."""
+
+    __tablename__ = "prior_entries"
+
+    prior_id: Mapped[int] = mapped_column(ForeignKey("prior_versions.id"), primary_key=True)
+    position: Mapped[int] = mapped_column(Integer, primary_key=True)
+    revision_id: Mapped[int] = mapped_column(ForeignKey("entry_revisions.id"))
+    weight: Mapped[float] = mapped_column(Float)
+    ratings: Mapped[list] = mapped_column(JSON)
+    discount: Mapped[dict] = mapped_column(JSON)
+
+    revision: Mapped[EntryRevision] = relationship()
