@@ -34,14 +34,15 @@ from registry.synthesis.bayes import (
 )
 
 BCG_T_EVENTS = np.array([4, 6, 3, 62, 33, 180, 8, 505, 29, 17, 186, 5, 27])
-BCG_T_TOTAL = np.array([123, 306, 231, 13598, 5069, 1541, 2545, 88391, 7499, 1716, 50634,
-                        2498, 16913])
+BCG_T_TOTAL = np.array(
+    [123, 306, 231, 13598, 5069, 1541, 2545, 88391, 7499, 1716, 50634, 2498, 16913]
+)
 BCG_C_EVENTS = np.array([11, 29, 11, 248, 47, 372, 10, 499, 45, 65, 141, 3, 29])
-BCG_C_TOTAL = np.array([139, 303, 220, 12867, 5808, 1451, 629, 88391, 7277, 1665, 27338,
-                        2341, 17854])
+BCG_C_TOTAL = np.array(
+    [139, 303, 220, 12867, 5808, 1451, 629, 88391, 7277, 1665, 27338, 2341, 17854]
+)
 PUMP_FAILURES = np.array([5, 1, 5, 14, 3, 19, 1, 1, 4, 22])
-PUMP_TIMES = np.array([94.320, 15.720, 62.880, 125.760, 5.240, 31.440, 1.048, 1.048, 2.096,
-                       10.480])
+PUMP_TIMES = np.array([94.320, 15.720, 62.880, 125.760, 5.240, 31.440, 1.048, 1.048, 2.096, 10.480])
 
 LEVELS = (0.025, 0.5, 0.975)
 
@@ -52,9 +53,9 @@ def bcg_log_rr() -> tuple[np.ndarray, np.ndarray]:
     return y, se
 
 
-def weighted_predictive_quantiles(mu: np.ndarray, tau: np.ndarray, logw: np.ndarray,
-                                  levels=LEVELS, batches: int = 20) -> tuple[np.ndarray,
-                                                                             np.ndarray]:
+def weighted_predictive_quantiles(
+    mu: np.ndarray, tau: np.ndarray, logw: np.ndarray, levels=LEVELS, batches: int = 20
+) -> tuple[np.ndarray, np.ndarray]:
     """Quantiles of sum_s w_s N(mu_s, tau_s²) (Rao-Blackwellised), and their batch-means se."""
 
     def quantiles(m, t, lw):
@@ -63,14 +64,25 @@ def weighted_predictive_quantiles(mu: np.ndarray, tau: np.ndarray, logw: np.ndar
         out = []
         for q in levels:
             lo, hi = np.min(m - 10 * t), np.max(m + 10 * t)
-            out.append(optimize.brentq(lambda x, q=q: w @ special.ndtr((x - m) / t) - q, lo, hi,
-                                       xtol=1e-10))
+            out.append(
+                optimize.brentq(
+                    lambda x, q=q: w @ special.ndtr((x - m) / t) - q, lo, hi, xtol=1e-10
+                )
+            )
         return np.array(out)
 
     whole = quantiles(mu, tau, logw)
-    parts = np.array([quantiles(m, t, lw) for m, t, lw in
-                      zip(np.array_split(mu, batches), np.array_split(tau, batches),
-                          np.array_split(logw, batches), strict=True)])
+    parts = np.array(
+        [
+            quantiles(m, t, lw)
+            for m, t, lw in zip(
+                np.array_split(mu, batches),
+                np.array_split(tau, batches),
+                np.array_split(logw, batches),
+                strict=True,
+            )
+        ]
+    )
     return whole, parts.std(axis=0, ddof=1) / math.sqrt(batches)
 
 
@@ -91,8 +103,7 @@ def test_normal_predictive_matches_importance_sampling():
     logw = loglik - stats.t.logpdf(mu - centre, 4, scale=0.6)  # flat mu prior
     reference, mc_se = weighted_predictive_quantiles(mu, tau, logw)
     fit = fit_normal(y, se, "half-normal:0.5")
-    assert np.all(np.abs(ours(fit) - reference) < 4 * mc_se + 1e-4), (ours(fit), reference,
-                                                                       mc_se)
+    assert np.all(np.abs(ours(fit) - reference) < 4 * mc_se + 1e-4), (ours(fit), reference, mc_se)
     # posterior mean of mu, self-normalised importance sampling
     w = np.exp(logw - logw.max())
     assert abs(fit.mu - w @ mu / w.sum()) < 0.01
@@ -121,8 +132,12 @@ def binomial_importance(events, totals, tau_scale, n, seed, mu_prior_sd=None):
     d = 1.2 / np.sqrt(prec)
     theta = c + d * rng.standard_t(5, (n, len(events)))
     loglik = stats.binom.logpmf(events, totals, special.expit(theta))
-    logw += (loglik + stats.norm.logpdf(theta, mu[:, None], tau[:, None])
-             - stats.t.logpdf((theta - c) / d, 5) + np.log(d)).sum(axis=1)
+    logw += (
+        loglik
+        + stats.norm.logpdf(theta, mu[:, None], tau[:, None])
+        - stats.t.logpdf((theta - c) / d, 5)
+        + np.log(d)
+    ).sum(axis=1)
     return mu, tau, logw
 
 
@@ -130,8 +145,7 @@ def test_binomial_predictive_matches_importance_sampling():
     mu, tau, logw = binomial_importance(BCG_C_EVENTS, BCG_C_TOTAL, 1.0, 60_000, 7)
     reference, mc_se = weighted_predictive_quantiles(mu, tau, logw)
     fit = fit_binomial(BCG_C_EVENTS, BCG_C_TOTAL, "half-normal:1")
-    assert np.all(np.abs(ours(fit) - reference) < 4 * mc_se + 1e-4), (ours(fit), reference,
-                                                                       mc_se)
+    assert np.all(np.abs(ours(fit) - reference) < 4 * mc_se + 1e-4), (ours(fit), reference, mc_se)
 
 
 def test_poisson_predictive_matches_importance_sampling():
@@ -147,13 +161,15 @@ def test_poisson_predictive_matches_importance_sampling():
     c = (y0 / v0 + mu[:, None] / t2) / prec
     d = 1.2 / np.sqrt(prec)
     theta = c + d * rng.standard_t(5, (n, k))
-    logw += (stats.poisson.logpmf(PUMP_FAILURES, PUMP_TIMES * np.exp(theta))
-             + stats.norm.logpdf(theta, mu[:, None], tau[:, None])
-             - stats.t.logpdf((theta - c) / d, 5) + np.log(d)).sum(axis=1)
+    logw += (
+        stats.poisson.logpmf(PUMP_FAILURES, PUMP_TIMES * np.exp(theta))
+        + stats.norm.logpdf(theta, mu[:, None], tau[:, None])
+        - stats.t.logpdf((theta - c) / d, 5)
+        + np.log(d)
+    ).sum(axis=1)
     reference, mc_se = weighted_predictive_quantiles(mu, tau, logw)
     fit = fit_poisson(PUMP_FAILURES, PUMP_TIMES, "half-normal:1")
-    assert np.all(np.abs(ours(fit) - reference) < 4 * mc_se + 1e-4), (ours(fit), reference,
-                                                                       mc_se)
+    assert np.all(np.abs(ours(fit) - reference) < 4 * mc_se + 1e-4), (ours(fit), reference, mc_se)
 
 
 def test_tiny_tau_scale_gives_the_common_effect_answer():
@@ -164,7 +180,8 @@ def test_tiny_tau_scale_gives_the_common_effect_answer():
     assert fit.mu == pytest.approx(mu_fe, abs=1e-6)
     assert fit.se == pytest.approx(se_fe, rel=1e-5)
     assert fit.predictive.quantiles["0.975"] == pytest.approx(
-        mu_fe + stats.norm.ppf(0.975) * se_fe, abs=1e-5)
+        mu_fe + stats.norm.ppf(0.975) * se_fe, abs=1e-5
+    )
 
 
 def test_tiny_tau_scale_binomial_gives_the_exact_common_proportion():
@@ -178,8 +195,9 @@ def test_tiny_tau_scale_binomial_gives_the_exact_common_proportion():
     top = log_lik(mode)
     dens = lambda m: math.exp(log_lik(m) - top)  # noqa: E731
     mass = integrate.quad(dens, mode - 1, mode + 1, epsabs=0, epsrel=1e-12)[0]
-    mean = integrate.quad(lambda m: m * dens(m), mode - 1, mode + 1, epsabs=0,
-                          epsrel=1e-12)[0] / mass
+    mean = (
+        integrate.quad(lambda m: m * dens(m), mode - 1, mode + 1, epsabs=0, epsrel=1e-12)[0] / mass
+    )
     fit = fit_binomial(e, n, "half-normal:1e-7")
     assert fit.mu == pytest.approx(mean, abs=1e-6)
     assert fit.predictive.mean == pytest.approx(mean, abs=1e-6)
@@ -205,10 +223,8 @@ def test_grid_refinement_moves_quantiles_less_than_the_bound(model):
     y, se = bcg_log_rr()
     run = {
         "normal": lambda r: fit_normal(y, se, "half-t:0.5,3", refine=r),
-        "binomial": lambda r: fit_binomial(BCG_C_EVENTS, BCG_C_TOTAL, "half-normal:1",
-                                           refine=r),
-        "poisson": lambda r: fit_poisson(PUMP_FAILURES, PUMP_TIMES, "log-normal:-0.5,1",
-                                         refine=r),
+        "binomial": lambda r: fit_binomial(BCG_C_EVENTS, BCG_C_TOTAL, "half-normal:1", refine=r),
+        "poisson": lambda r: fit_poisson(PUMP_FAILURES, PUMP_TIMES, "log-normal:-0.5,1", refine=r),
     }[model]
     base, fine = run(1), run(2)
     a = np.array(list(base.predictive.quantiles.values()))
@@ -244,7 +260,8 @@ def test_power_one_is_no_change_and_small_power_widens():
     # a power a on a normal likelihood is a variance se²/a (Ibrahim & Chen 2000)
     half = fit_normal(y, se, "half-normal:0.5", power=np.full(13, 0.5))
     assert half.predictive.quantiles == pytest.approx(
-        fit_normal(y, se / math.sqrt(0.5), "half-normal:0.5").predictive.quantiles, abs=1e-9)
+        fit_normal(y, se / math.sqrt(0.5), "half-normal:0.5").predictive.quantiles, abs=1e-9
+    )
     b1 = fit_binomial(BCG_C_EVENTS, BCG_C_TOTAL, "half-normal:1")
     b2 = fit_binomial(BCG_C_EVENTS, BCG_C_TOTAL, "half-normal:1", power=np.full(13, 0.05))
     assert b2.se > b1.se
@@ -262,8 +279,7 @@ def test_bias_terms_add_to_mean_and_variance():
     v = np.zeros(13)
     v[5] = 1e8
     loose = fit_binomial(BCG_C_EVENTS, BCG_C_TOTAL, "half-normal:1", bias_var=v)
-    without = fit_binomial(np.delete(BCG_C_EVENTS, 5), np.delete(BCG_C_TOTAL, 5),
-                           "half-normal:1")
+    without = fit_binomial(np.delete(BCG_C_EVENTS, 5), np.delete(BCG_C_TOTAL, 5), "half-normal:1")
     assert loose.predictive.quantiles == pytest.approx(without.predictive.quantiles, abs=1e-3)
     assert abs(loose.mu - fit_binomial(BCG_C_EVENTS, BCG_C_TOTAL, "half-normal:1").mu) > 0.01
 
@@ -274,7 +290,8 @@ def test_priors_parse_and_reject_bad_text():
     assert MuPrior.parse("normal:0,10") == MuPrior("normal", (0.0, 10.0))
     # half-normal density: 2 phi(tau / s) / s
     assert float(TauPrior.parse("half-normal:0.5").logpdf(0.3)) == pytest.approx(
-        math.log(2 * stats.norm.pdf(0.3, scale=0.5)))
+        math.log(2 * stats.norm.pdf(0.3, scale=0.5))
+    )
     for bad in ("half-normal", "half-normal:-1", "half-t:1", "cauchy:1", "half-normal:x"):
         with pytest.raises(InputError) as info:
             TauPrior.parse(bad)
@@ -286,8 +303,7 @@ def test_priors_parse_and_reject_bad_text():
 def test_result_dictionary_has_the_contract_keys():
     y, se = bcg_log_rr()
     doc = fit_normal(y, se, "half-normal:0.5").to_dict()
-    for key in ("k", "method", "mu", "se", "ci", "tau2", "i2", "q", "prediction",
-                "predictive"):
+    for key in ("k", "method", "mu", "se", "ci", "tau2", "i2", "q", "prediction", "predictive"):
         assert key in doc
     assert set(doc["predictive"]["quantiles"]) >= {"0.025", "0.5", "0.975"}
     assert doc["method"] == "bayes" and doc["k"] == 13

@@ -25,15 +25,32 @@ COMMENT = {"stan": "//", "jags": "#", "pymc": "#", "numpyro": "#", "brms": "#"}
 
 
 def single(family: str, params: dict[str, float], scale: str, measure: str = "") -> Prior:
-    return Prior(f"test-{family}", 1, "sha256:" + "0" * 64, scale,
-                 (Component(family, params),), quantity=f"test {family}", measure=measure)
+    return Prior(
+        f"test-{family}",
+        1,
+        "sha256:" + "0" * 64,
+        scale,
+        (Component(family, params),),
+        quantity=f"test {family}",
+        measure=measure,
+    )
 
 
-def mixture(family: str, first: dict[str, float], second: dict[str, float], scale: str,
-            weights: tuple[float, float] = (0.3, 0.7)) -> Prior:
-    return Prior(f"test-{family}-mix", 2, "sha256:" + "1" * 64, scale,
-                 (Component(family, first, weights[0]), Component(family, second, weights[1])),
-                 quantity=f"test {family} mix")
+def mixture(
+    family: str,
+    first: dict[str, float],
+    second: dict[str, float],
+    scale: str,
+    weights: tuple[float, float] = (0.3, 0.7),
+) -> Prior:
+    return Prior(
+        f"test-{family}-mix",
+        2,
+        "sha256:" + "1" * 64,
+        scale,
+        (Component(family, first, weights[0]), Component(family, second, weights[1])),
+        quantity=f"test {family} mix",
+    )
 
 
 # One prior per family on a scale where that family is used, and a two-component mixture of
@@ -46,12 +63,14 @@ SINGLES: dict[str, Prior] = {
     "gamma": single("gamma", {"a": 2.5, "scale": 0.4}, "rate"),
 }
 MIXTURES: dict[str, Prior] = {
-    "normal": mixture("normal", {"loc": -0.5, "scale": 0.4}, {"loc": 0.5, "scale": 0.6},
-                      "logit"),
-    "student_t": mixture("student_t", {"df": 4.0, "loc": -0.5, "scale": 0.4},
-                         {"df": 8.0, "loc": 0.5, "scale": 0.6}, "identity"),
-    "lognormal": mixture("lognormal", {"s": 0.3, "scale": 1.0}, {"s": 0.5, "scale": 2.0},
-                         "rate"),
+    "normal": mixture("normal", {"loc": -0.5, "scale": 0.4}, {"loc": 0.5, "scale": 0.6}, "logit"),
+    "student_t": mixture(
+        "student_t",
+        {"df": 4.0, "loc": -0.5, "scale": 0.4},
+        {"df": 8.0, "loc": 0.5, "scale": 0.6},
+        "identity",
+    ),
+    "lognormal": mixture("lognormal", {"s": 0.3, "scale": 1.0}, {"s": 0.5, "scale": 2.0}, "rate"),
     "beta": mixture("beta", {"a": 2.0, "b": 8.0}, {"a": 6.0, "b": 4.0}, "probability"),
     "gamma": mixture("gamma", {"a": 2.0, "scale": 0.5}, {"a": 5.0, "scale": 0.4}, "rate"),
 }
@@ -59,8 +78,7 @@ MIXTURES: dict[str, Prior] = {
 # laws of total expectation and variance (common practice): mean 0.3(-1) + 0.7(1) = 0.4;
 # variance 0.3(0.01 + 1.96) + 0.7(0.25 + 0.36) = 1.018.
 WORKED = mixture("normal", {"loc": -1.0, "scale": 0.1}, {"loc": 1.0, "scale": 0.5}, "log")
-ALL = {**{f"{k}": v for k, v in SINGLES.items()},
-       **{f"{k}_mix": v for k, v in MIXTURES.items()}}
+ALL = {**{f"{k}": v for k, v in SINGLES.items()}, **{f"{k}_mix": v for k, v in MIXTURES.items()}}
 
 
 # Each language's definition of its distributions as scipy.stats objects. Sources (recalled
@@ -75,9 +93,9 @@ SEMANTICS: dict[str, dict[str, Callable[..., object]]] = {
         "gamma": lambda alpha, rate: stats.gamma(alpha, scale=1 / rate),
     },
     "jags": {
-        "dnorm": lambda mu, tau: stats.norm(mu, tau ** -0.5),
-        "dt": lambda mu, tau, k: stats.t(k, mu, tau ** -0.5),
-        "dlnorm": lambda mu, tau: stats.lognorm(tau ** -0.5, scale=math.exp(mu)),
+        "dnorm": lambda mu, tau: stats.norm(mu, tau**-0.5),
+        "dt": lambda mu, tau, k: stats.t(k, mu, tau**-0.5),
+        "dlnorm": lambda mu, tau: stats.lognorm(tau**-0.5, scale=math.exp(mu)),
         "dbeta": lambda a, b: stats.beta(a, b),
         "dgamma": lambda r, rate: stats.gamma(r, scale=1 / rate),
     },
@@ -92,8 +110,7 @@ SEMANTICS: dict[str, dict[str, Callable[..., object]]] = {
         "Normal": lambda loc, scale: stats.norm(loc, scale),
         "StudentT": lambda df, loc, scale: stats.t(df, loc, scale),
         "LogNormal": lambda loc, scale: stats.lognorm(scale, scale=math.exp(loc)),
-        "Beta": lambda concentration1, concentration0: stats.beta(concentration1,
-                                                                  concentration0),
+        "Beta": lambda concentration1, concentration0: stats.beta(concentration1, concentration0),
         "Gamma": lambda concentration, rate: stats.gamma(concentration, scale=1 / rate),
     },
 }
@@ -124,9 +141,15 @@ def _python_calls(text: str, language: str) -> list[tuple[float, object]]:
         return SEMANTICS[language][func.attr](**kwargs)
 
     names = set(SEMANTICS[language])
-    comps = [c for c in calls if isinstance(c.func, ast.Attribute)
-             and (c.func.attr in names or (c.func.attr == "dist"
-                                           and getattr(c.func.value, "attr", "") in names))]
+    comps = [
+        c
+        for c in calls
+        if isinstance(c.func, ast.Attribute)
+        and (
+            c.func.attr in names
+            or (c.func.attr == "dist" and getattr(c.func.value, "attr", "") in names)
+        )
+    ]
     weights: list[float] = [1.0]
     for c in calls:
         for k in c.keywords:
@@ -152,8 +175,9 @@ def read_back(text: str, language: str) -> list[tuple[float, object]]:
         return [(1.0, SEMANTICS["brms"][f](*_numbers(a)))]
     weights = [float(w) for w in re.findall(r"_weight\[\d+\] <- (" + _NUMBER + ")", body)]
     draws = re.findall(r"~ (d(?:norm|t|lnorm|beta|gamma))\(([^)]*)\)", body)
-    return list(zip(weights or [1.0],
-                    [SEMANTICS["jags"][f](*_numbers(a)) for f, a in draws], strict=True))
+    return list(
+        zip(weights or [1.0], [SEMANTICS["jags"][f](*_numbers(a)) for f, a in draws], strict=True)
+    )
 
 
 def _languages_for(prior: Prior) -> list[str]:
@@ -162,8 +186,11 @@ def _languages_for(prior: Prior) -> list[str]:
     return [lang for lang in CODE_LANGUAGES if lang != "brms" or ok_brms]
 
 
-CASES = [(key, lang) for key, prior in {**ALL, "worked": WORKED}.items()
-         for lang in _languages_for(prior)]
+CASES = [
+    (key, lang)
+    for key, prior in {**ALL, "worked": WORKED}.items()
+    for lang in _languages_for(prior)
+]
 
 
 @pytest.mark.parametrize(("key", "language"), CASES)
@@ -191,7 +218,7 @@ def test_gamma_is_shape_rate_in_every_language() -> None:
     prior = single("gamma", {"a": 3.0, "scale": 0.25}, "rate")
     assert "x ~ gamma(3.0, 4.0);" in emit(prior, "stan", param="x")
     assert "x ~ dgamma(3.0, 4.0)" in emit(prior, "jags", param="x")
-    assert "pm.Gamma(\"x\", alpha=3.0, beta=4.0)" in emit(prior, "pymc", param="x")
+    assert 'pm.Gamma("x", alpha=3.0, beta=4.0)' in emit(prior, "pymc", param="x")
     assert "dist.Gamma(concentration=3.0, rate=4.0)" in emit(prior, "numpyro", param="x")
 
 
@@ -258,11 +285,19 @@ def test_brms_statement_follows_the_grammar(family: str) -> None:
 def test_header_says_what_and_where_from(key: str, language: str) -> None:
     prior = {**ALL, "worked": WORKED}[key]
     text = emit(prior, language)
-    header = " ".join(ln[len(COMMENT[language]):] for ln in text.splitlines()
-                      if ln.startswith(COMMENT[language]))
-    for needle in (prior.name, f"version {prior.version}", prior.digest,
-                   f"analysis scale: {prior.scale}", f"priorledger trace {prior.label}",
-                   "pre-specified", "operating characteristics", "qualified statistical"):
+    header = " ".join(
+        ln[len(COMMENT[language]) :] for ln in text.splitlines() if ln.startswith(COMMENT[language])
+    )
+    for needle in (
+        prior.name,
+        f"version {prior.version}",
+        prior.digest,
+        f"analysis scale: {prior.scale}",
+        f"priorledger trace {prior.label}",
+        "pre-specified",
+        "operating characteristics",
+        "qualified statistical",
+    ):
         assert needle in header
 
 
@@ -274,17 +309,35 @@ def test_log_scale_parameter_is_named_and_transformed() -> None:
     assert "log rate ratio" in stan
     assert "test_normal <- exp(log_test_normal)" in emit(prior, "jags")
     logit = emit(MIXTURES["normal"], "pymc")
-    assert 'pm.Deterministic("test_normal_mix", pm.math.invlogit(logit_test_normal_mix))' \
-        in logit
+    assert 'pm.Deterministic("test_normal_mix", pm.math.invlogit(logit_test_normal_mix))' in logit
 
 
-BAD_NAMES = ['a"b', "a'b", "a\nb", "a\rb", "x*/", "/*x", "x//", "a b", "a;b", "1abc", "",
-             "_x", "é", "x" * 65, "a-b", "a.b", "x\u2028y"]
-RESERVED = {"stan": ["for", "target", "lower", "int", "real", "x__", "log_sum_exp"],
-            "jags": ["model", "data", "var", "in", "for"],
-            "pymc": ["for", "lambda", "class", "pm", "match"],
-            "numpyro": ["def", "import", "None", "dist", "numpyro"],
-            "brms": ["if", "TRUE", "NULL", "function", "coef"]}
+BAD_NAMES = [
+    'a"b',
+    "a'b",
+    "a\nb",
+    "a\rb",
+    "x*/",
+    "/*x",
+    "x//",
+    "a b",
+    "a;b",
+    "1abc",
+    "",
+    "_x",
+    "é",
+    "x" * 65,
+    "a-b",
+    "a.b",
+    "x\u2028y",
+]
+RESERVED = {
+    "stan": ["for", "target", "lower", "int", "real", "x__", "log_sum_exp"],
+    "jags": ["model", "data", "var", "in", "for"],
+    "pymc": ["for", "lambda", "class", "pm", "match"],
+    "numpyro": ["def", "import", "None", "dist", "numpyro"],
+    "brms": ["if", "TRUE", "NULL", "function", "coef"],
+}
 
 
 @pytest.mark.parametrize("language", CODE_LANGUAGES)
@@ -295,16 +348,19 @@ def test_unsafe_names_are_refused(language: str, name: str) -> None:
     assert err.value.field == "param"
 
 
-@pytest.mark.parametrize(("language", "name"),
-                         [(lang, n) for lang, names in RESERVED.items() for n in names])
+@pytest.mark.parametrize(
+    ("language", "name"), [(lang, n) for lang, names in RESERVED.items() for n in names]
+)
 def test_reserved_words_are_refused(language: str, name: str) -> None:
     with pytest.raises(InputError) as err:
         emit(SINGLES["normal"], language, param=name)
     assert "reserved" in err.value.message or "__" in err.value.message
 
 
-HOSTILE = ("x */ } model { y ~ normal(0, 1); /* \n\r\u2028\u2029\u0085 import os; os.system('x')"
-           "\n# -*- coding: utf-7 -*-\x00\x1b[2J \u202e 'quote\" //; ${a}`b` \\")
+HOSTILE = (
+    "x */ } model { y ~ normal(0, 1); /* \n\r\u2028\u2029\u0085 import os; os.system('x')"
+    "\n# -*- coding: utf-7 -*-\x00\x1b[2J \u202e 'quote\" //; ${a}`b` \\"
+)
 
 
 @pytest.mark.parametrize(("key", "language"), CASES)
@@ -315,8 +371,7 @@ def test_free_text_cannot_leave_a_comment(key: str, language: str) -> None:
     hostile = Prior.from_dict(doc)
     text = emit(hostile, language, param="theta")
     # The code is exactly the code written for the same numbers with harmless text.
-    assert code_lines(text, language) == code_lines(emit(clean, language, param="theta"),
-                                                    language)
+    assert code_lines(text, language) == code_lines(emit(clean, language, param="theta"), language)
     for line in text.splitlines():
         assert line.isascii() and line.isprintable()
         if line.startswith(COMMENT[language]):
@@ -333,11 +388,16 @@ def test_python_snippets_parse() -> None:
 
 
 def test_default_name_comes_from_the_quantity_and_scale() -> None:
-    prior = Prior("falls", 1, "d", "logit", (Component("normal", {"loc": 0, "scale": 1}),),
-                  quantity="falls-rate-control-12m")
+    prior = Prior(
+        "falls",
+        1,
+        "d",
+        "logit",
+        (Component("normal", {"loc": 0, "scale": 1}),),
+        quantity="falls-rate-control-12m",
+    )
     assert "real logit_falls_rate_control_12m;" in emit(prior, "stan")
-    prior = Prior("9 lives", 1, "d", "identity",
-                  (Component("normal", {"loc": 0, "scale": 1}),))
+    prior = Prior("9 lives", 1, "d", "identity", (Component("normal", {"loc": 0, "scale": 1}),))
     assert "real theta_9_lives;" in emit(prior, "stan")
 
 
@@ -352,12 +412,21 @@ def test_unknown_language_and_json_param() -> None:
 
 
 def _rich_prior() -> Prior:
-    return Prior("falls-rr", 4, "sha256:" + "ab" * 32, "log",
-                 (Component("normal", {"loc": -0.1 / 3, "scale": 0.3}, 0.2),
-                  Component("student_t", {"df": 3.0, "loc": 0.7, "scale": 1e-5}, 0.8)),
-                 parameter="log rate ratio of falls", quantity="falls-rr",
-                 measure="rate_ratio", ess={"morita": 12.345678901234567, "method": "x"},
-                 entries=(EntryUse(3, 2, 0.25), EntryUse(9, 1, 0.75)))
+    return Prior(
+        "falls-rr",
+        4,
+        "sha256:" + "ab" * 32,
+        "log",
+        (
+            Component("normal", {"loc": -0.1 / 3, "scale": 0.3}, 0.2),
+            Component("student_t", {"df": 3.0, "loc": 0.7, "scale": 1e-5}, 0.8),
+        ),
+        parameter="log rate ratio of falls",
+        quantity="falls-rr",
+        measure="rate_ratio",
+        ess={"morita": 12.345678901234567, "method": "x"},
+        entries=(EntryUse(3, 2, 0.25), EntryUse(9, 1, 0.75)),
+    )
 
 
 @pytest.mark.parametrize("prior", [*ALL.values(), WORKED, _rich_prior()], ids=str)
@@ -378,15 +447,27 @@ def test_json_is_described_and_versioned() -> None:
         assert key in doc
     q = doc["summary"]["quantiles"]
     ref = stats.norm(-0.1 / 3, 0.3)
-    assert doc["components"][0] == {"weight": 0.2, "family": "normal", "loc": -0.1 / 3,
-                                    "scale": 0.3}
-    assert ref.cdf(q["0.5"]) * 0.2 + 0.8 * stats.t(3, 0.7, 1e-5).cdf(q["0.5"]) == \
-        pytest.approx(0.5, abs=1e-9)
+    assert doc["components"][0] == {
+        "weight": 0.2,
+        "family": "normal",
+        "loc": -0.1 / 3,
+        "scale": 0.3,
+    }
+    assert ref.cdf(q["0.5"]) * 0.2 + 0.8 * stats.t(3, 0.7, 1e-5).cdf(q["0.5"]) == pytest.approx(
+        0.5, abs=1e-9
+    )
 
 
-@pytest.mark.parametrize("text", ["{", "[]", '{"format": "other"}',
-                                  '{"format": "priorledger.prior", "format_version": 99}',
-                                  '{"format": "priorledger.prior", "format_version": 1}'])
+@pytest.mark.parametrize(
+    "text",
+    [
+        "{",
+        "[]",
+        '{"format": "other"}',
+        '{"format": "priorledger.prior", "format_version": 99}',
+        '{"format": "priorledger.prior", "format_version": 1}',
+    ],
+)
 def test_json_refuses_what_it_cannot_read(text: str) -> None:
     with pytest.raises(InputError):
         load_json(text)
@@ -400,4 +481,3 @@ def test_prior_methods_delegate() -> None:
     assert p.to_numpyro() == emit(p, "numpyro")
     assert p.to_brms("b") == emit(p, "brms", param="b")
     assert load_json(p.to_json()) == p
-

@@ -5,7 +5,7 @@ quantiles (scipy). Monte Carlo tolerance: the asymptotic standard error of a sam
 p-quantile, sqrt(p (1 - p) / n_eff) / f(x_p), where f is the prior density at the true
 quantile x_p (Serfling 1980, *Approximation Theorems of Mathematical Statistics*, 2.3.3,
 recalled) and n_eff is the number of draws for independent draws, or ArviZ's quantile
-effective sample size for MCMC (Vehtari et al. 2021, *Bayesian Analysis*); a check fails
+effective sample size for MCMC (rank-normalised quantile ESS, as ArviZ computes it); a check fails
 beyond 4 standard errors. Every sampler is seeded.
 
 A skipped test means the tool is missing: install with `pip install -e .[clients]` and run
@@ -35,8 +35,9 @@ Z = 4.0
 PRIORS: dict[str, Prior] = {**ALL, "worked": WORKED}
 
 
-def assert_quantiles(prior: Prior, draws: np.ndarray, ess: dict[float, float] | None = None
-                     ) -> None:
+def assert_quantiles(
+    prior: Prior, draws: np.ndarray, ess: dict[float, float] | None = None
+) -> None:
     draws = np.asarray(draws, dtype=float).ravel()
     for q in QUANTILES:
         x = prior.ppf(q)
@@ -49,8 +50,10 @@ def assert_quantiles(prior: Prior, draws: np.ndarray, ess: dict[float, float] | 
 def quantile_ess(chains: np.ndarray) -> dict[float, float]:
     """ArviZ's effective sample size of each quantile, for draws shaped (chain, draw)."""
     az = pytest.importorskip("arviz")
-    return {q: float(az.ess(np.asarray(chains, dtype=float), method="quantile", prob=q))
-            for q in QUANTILES}
+    return {
+        q: float(az.ess(np.asarray(chains, dtype=float), method="quantile", prob=q))
+        for q in QUANTILES
+    }
 
 
 def blocks(program: str) -> dict[str, list[str]]:
@@ -87,8 +90,12 @@ def test_every_emitted_stan_program_compiles(tmp_path: Path) -> None:
     for key, program in programs.items():
         source = tmp_path / f"{key}.stan"
         source.write_text(program)
-        done = subprocess.run([str(stanc), str(source), "--o", str(tmp_path / f"{key}.hpp")],
-                              capture_output=True, text=True, check=False)
+        done = subprocess.run(
+            [str(stanc), str(source), "--o", str(tmp_path / f"{key}.hpp")],
+            capture_output=True,
+            text=True,
+            check=False,
+        )
         assert done.returncode == 0, f"{key}: {done.stderr}"
 
 
@@ -100,8 +107,9 @@ def test_stan_sampling_reproduces_the_quantiles() -> None:
     for key, prior in ALL.items():
         for block, lines in blocks(emit(prior, "stan", param=f"p_{key}")).items():
             parts[block] += lines
-    program = "\n".join(f"{block} {{\n" + "\n".join(lines) + "\n}"
-                        for block, lines in parts.items() if lines)
+    program = "\n".join(
+        f"{block} {{\n" + "\n".join(lines) + "\n}" for block, lines in parts.items() if lines
+    )
     chains, draws = 4, 2500
     model = stan.build(program, random_seed=20240611)
     fit = model.sample(num_chains=chains, num_samples=draws, num_warmup=1000)
@@ -154,20 +162,30 @@ def test_jags_reproduces_the_quantiles(tmp_path: Path) -> None:
     body = "\n".join(emit(prior, "jags", param=names[key]) for key, prior in PRIORS.items())
     (tmp_path / "model.bug").write_text("model {\n" + body + "}\n")
     (tmp_path / "inits.R").write_text(
-        '".RNG.name" <- "base::Mersenne-Twister"\n".RNG.seed" <- 20240611\n')
+        '".RNG.name" <- "base::Mersenne-Twister"\n".RNG.seed" <- 20240611\n'
+    )
     iterations = 20_000
-    commands = ['model in "model.bug"', "compile, nchains(1)", 'parameters in "inits.R"',
-                "initialize", "update 1000", *(f"monitor {n}" for n in names.values()),
-                f"update {iterations}", "coda *, stem(out)", "exit"]
+    commands = [
+        'model in "model.bug"',
+        "compile, nchains(1)",
+        'parameters in "inits.R"',
+        "initialize",
+        "update 1000",
+        *(f"monitor {n}" for n in names.values()),
+        f"update {iterations}",
+        "coda *, stem(out)",
+        "exit",
+    ]
     (tmp_path / "run.cmd").write_text("\n".join(commands) + "\n")
-    done = subprocess.run([jags, "run.cmd"], cwd=tmp_path, capture_output=True, text=True,
-                          check=False, timeout=300)
+    done = subprocess.run(
+        [jags, "run.cmd"], cwd=tmp_path, capture_output=True, text=True, check=False, timeout=300
+    )
     assert done.returncode == 0 and "error" not in done.stdout.lower(), done.stdout
     values = np.loadtxt(tmp_path / "outchain1.txt")[:, 1]
     index = {}
     for line in (tmp_path / "outindex.txt").read_text().splitlines():
         name, start, end = line.split()
-        index[name] = values[int(start) - 1:int(end)]
+        index[name] = values[int(start) - 1 : int(end)]
     for key, prior in PRIORS.items():
         x = index[names[key]]
         assert x.size == iterations
@@ -182,22 +200,32 @@ def test_brms_reads_the_statements_as_the_prior(tmp_path: Path) -> None:
     if rscript is None:
         pytest.skip("R is not installed (run .ci/clients.sh)")
     keys = [k for k, p in SINGLES.items() if p.components[0].support == "real"]
-    script = ["suppressPackageStartupMessages(library(brms))",
-              "d <- data.frame(y = 0, theta = 0, other = 0)"]
+    script = [
+        "suppressPackageStartupMessages(library(brms))",
+        "d <- data.frame(y = 0, theta = 0, other = 0)",
+    ]
     for key in keys:
         (statement,) = code_lines(emit(SINGLES[key], "brms", param="theta"), "brms")
-        script += [f'cat("== {key}\\n")',
-                   f"cat(make_stancode(y ~ 0 + theta + other, data = d, prior = {statement}))"]
+        script += [
+            f'cat("== {key}\\n")',
+            f"cat(make_stancode(y ~ 0 + theta + other, data = d, prior = {statement}))",
+        ]
     (tmp_path / "check.R").write_text("\n".join(script) + "\n")
-    done = subprocess.run([rscript, str(tmp_path / "check.R")], capture_output=True,
-                          text=True, check=False, timeout=300)
+    done = subprocess.run(
+        [rscript, str(tmp_path / "check.R")],
+        capture_output=True,
+        text=True,
+        check=False,
+        timeout=300,
+    )
     if "there is no package called" in done.stderr:
         pytest.skip("R's brms is not installed (run .ci/clients.sh)")
     assert done.returncode == 0, done.stderr
     sections = dict(re.findall(r"== (\w+)\n(.*?)(?=\n== |\Z)", done.stdout, re.DOTALL))
     for key in keys:
-        family, args = re.search(r"lprior \+= (\w+)_lpdf\(b\[1\] \| ([^)]*)\)",
-                                 sections[key]).groups()
+        family, args = re.search(
+            r"lprior \+= (\w+)_lpdf\(b\[1\] \| ([^)]*)\)", sections[key]
+        ).groups()
         translated = SEMANTICS["stan"][family](*[float(a) for a in args.split(",")])
         prior = SINGLES[key]
         for q in QUANTILES:

@@ -29,7 +29,7 @@ from registry.priors.ess import (
     information_shares,
     solve_power_for_cap,
 )
-from registry.priors.update import robustify, unit_information_component, update_beta
+from registry.priors.update import unit_information_component, update_beta, with_vague_component
 from registry.priors.value import Component, Prior
 
 METHODS = ("moment", "morita", "elir")
@@ -40,6 +40,7 @@ def prior(scale: str, *components: Component) -> Prior:
 
 
 # --- conjugate families: every method gives the standard ESS ------------------------------------
+
 
 @pytest.mark.parametrize("method", METHODS)
 @pytest.mark.parametrize(("a", "b"), [(3.0, 7.0), (12.5, 40.0), (0.5, 0.5), (1.0, 1.0)])
@@ -71,6 +72,7 @@ def test_gamma_ess_is_its_rate(method: str, shape: float, rate: float) -> None:
 
 
 # --- non-conjugate priors against closed forms from handbook moments -------------------------
+
 
 def test_student_t_prior() -> None:
     """t(nu, m, s) with normal data of sd s_u.
@@ -116,17 +118,25 @@ def test_lognormal_prior_on_a_rate() -> None:
 
 # --- mixtures -----------------------------------------------------------------------------
 
+
 def _curvature_fd(logpdf, x: float, h: float) -> float:
     """-d2/dx2 log p by a central difference of a scipy log density."""
     return -(logpdf(x + h) - 2 * logpdf(x) + logpdf(x - h)) / h**2
 
 
-@pytest.mark.parametrize("components", [
-    (Component("normal", {"loc": 0.0, "scale": 0.3}, 0.6),
-     Component("normal", {"loc": 0.8, "scale": 1.0}, 0.4)),
-    (Component("student_t", {"df": 3.0, "loc": -0.2, "scale": 0.25}, 0.7),
-     Component("normal", {"loc": 0.5, "scale": 1.5}, 0.3)),
-])
+@pytest.mark.parametrize(
+    "components",
+    [
+        (
+            Component("normal", {"loc": 0.0, "scale": 0.3}, 0.6),
+            Component("normal", {"loc": 0.8, "scale": 1.0}, 0.4),
+        ),
+        (
+            Component("student_t", {"df": 3.0, "loc": -0.2, "scale": 0.25}, 0.7),
+            Component("normal", {"loc": 0.5, "scale": 1.5}, 0.3),
+        ),
+    ],
+)
 def test_elir_of_mixture_against_direct_quadrature(components: tuple) -> None:
     """ELIR = E_p[i_p / i_F] (Neuenschwander et al. 2020), computed here independently
     with scipy's log densities, finite differences and quad over theta."""
@@ -144,12 +154,25 @@ def test_elir_of_mixture_against_direct_quadrature(components: tuple) -> None:
     assert ess(p, method="elir", unit_sd=s_u).value == pytest.approx(reference, rel=1e-5)
 
 
-@pytest.mark.parametrize(("scale", "components"), [
-    ("probability", (Component("beta", {"a": 20.0, "b": 60.0}, 0.7),
-                     Component("beta", {"a": 0.25, "b": 0.75}, 0.3))),
-    ("rate", (Component("gamma", {"a": 40.0, "scale": 0.01}, 0.5),
-              Component("lognormal", {"s": 0.3, "scale": 0.45}, 0.5))),
-])
+@pytest.mark.parametrize(
+    ("scale", "components"),
+    [
+        (
+            "probability",
+            (
+                Component("beta", {"a": 20.0, "b": 60.0}, 0.7),
+                Component("beta", {"a": 0.25, "b": 0.75}, 0.3),
+            ),
+        ),
+        (
+            "rate",
+            (
+                Component("gamma", {"a": 40.0, "scale": 0.01}, 0.5),
+                Component("lognormal", {"s": 0.3, "scale": 0.45}, 0.5),
+            ),
+        ),
+    ],
+)
 def test_morita_curvature_on_the_prior_scale(scale: str, components: tuple) -> None:
     """Morita et al. (2008): ESS = (D_p - D_0)/i_F at the prior mean. D_p is recomputed
     here by finite differences of scipy's log densities on the prior's own scale; D_0, the
@@ -172,8 +195,11 @@ def test_morita_curvature_on_the_prior_scale(scale: str, components: tuple) -> N
 def test_morita_is_zero_where_the_mean_sits_in_a_trough() -> None:
     """Two separated normals: the log density is convex at the mean (checked with scipy), so
     the ESS of Morita et al. (2008), minimised over m >= 0, is 0; we say so."""
-    p = prior("identity", Component("normal", {"loc": -3.0, "scale": 0.5}, 0.5),
-              Component("normal", {"loc": 3.0, "scale": 0.5}, 0.5))
+    p = prior(
+        "identity",
+        Component("normal", {"loc": -3.0, "scale": 0.5}, 0.5),
+        Component("normal", {"loc": 3.0, "scale": 0.5}, 0.5),
+    )
     assert _curvature_fd(lambda t: float(p.logpdf(np.array([t]))[0]), 0.0, 1e-4) < 0
     values = ess_all(p, unit_sd=1.0)
     assert values["morita"] == 0.0
@@ -181,23 +207,42 @@ def test_morita_is_zero_where_the_mean_sits_in_a_trough() -> None:
     assert values["elir"] > 0
 
 
-@pytest.mark.parametrize(("scale", "informative", "vague"), [
-    ("probability", Component("beta", {"a": 30.0, "b": 70.0}),
-     unit_information_component(0.3, None, "beta", "probability")),
-    ("identity", Component("normal", {"loc": 0.0, "scale": 0.2}),
-     unit_information_component(0.0, 2.0, "normal", "identity")),
-    ("rate", Component("gamma", {"a": 50.0, "scale": 0.01}),
-     unit_information_component(0.5, None, "gamma", "rate")),
-])
-def test_elir_of_robust_mixture_falls_as_vague_weight_rises(scale: str, informative: Component,
-                                                           vague: Component) -> None:
+@pytest.mark.parametrize(
+    ("scale", "informative", "vague"),
+    [
+        (
+            "probability",
+            Component("beta", {"a": 30.0, "b": 70.0}),
+            unit_information_component(0.3, None, "beta", "probability"),
+        ),
+        (
+            "identity",
+            Component("normal", {"loc": 0.0, "scale": 0.2}),
+            unit_information_component(0.0, 2.0, "normal", "identity"),
+        ),
+        (
+            "rate",
+            Component("gamma", {"a": 50.0, "scale": 0.01}),
+            unit_information_component(0.5, None, "gamma", "rate"),
+        ),
+    ],
+)
+def test_elir_of_robust_mixture_falls_as_vague_weight_rises(
+    scale: str, informative: Component, vague: Component
+) -> None:
     """Neuenschwander et al. (2020) discuss robust mixtures (Schmidli et al. 2014): more vague
     weight, less information. The ELIR must fall strictly along a grid of weights, from the
     informative component's ESS towards the vague component's one unit."""
     unit_sd = 2.0 if scale == "identity" else None
     full = ess(prior(scale, informative), method="elir", unit_sd=unit_sd).value
-    values = [ess(prior(scale, *robustify((informative,), vague, w)), method="elir",
-                  unit_sd=unit_sd).value for w in (0.01, 0.1, 0.2, 0.4, 0.6, 0.8, 0.95, 0.999)]
+    values = [
+        ess(
+            prior(scale, *with_vague_component((informative,), vague, w)),
+            method="elir",
+            unit_sd=unit_sd,
+        ).value
+        for w in (0.01, 0.1, 0.2, 0.4, 0.6, 0.8, 0.95, 0.999)
+    ]
     assert all(later < earlier for earlier, later in itertools.pairwise(values))
     assert values[0] < full
     assert values[-1] == pytest.approx(1.0, abs=0.05)
@@ -207,15 +252,20 @@ def test_elir_is_predictively_consistent_for_a_beta_mixture() -> None:
     """Neuenschwander et al. (2020), recalled: E over the prior predictive of the posterior's
     ELIR after n participants equals the prior's ELIR + n. The predictive probabilities are
     scipy's beta-binomial pmf; the exact sum over x = 0..n."""
-    components = (Component("beta", {"a": 6.0, "b": 14.0}, 0.8),
-                  Component("beta", {"a": 0.3, "b": 0.7}, 0.2))
+    components = (
+        Component("beta", {"a": 6.0, "b": 14.0}, 0.8),
+        Component("beta", {"a": 0.3, "b": 0.7}, 0.2),
+    )
     n = 15
     x = np.arange(n + 1)
-    pmf = sum(c.weight * stats.betabinom.pmf(x, n, c.params["a"], c.params["b"])
-              for c in components)
+    pmf = sum(
+        c.weight * stats.betabinom.pmf(x, n, c.params["a"], c.params["b"]) for c in components
+    )
     expected_posterior = sum(
-        float(pmf[k]) * ess(prior("probability", *update_beta(components, k, n)),
-                            method="elir").value for k in range(n + 1))
+        float(pmf[k])
+        * ess(prior("probability", *update_beta(components, k, n)), method="elir").value
+        for k in range(n + 1)
+    )
     prior_elir = ess(prior("probability", *components), method="elir").value
     assert expected_posterior == pytest.approx(prior_elir + n, rel=1e-5)
 
@@ -248,14 +298,21 @@ def test_data_model_needs_to_be_said_where_the_scale_is_ambiguous() -> None:
 
 # --- the cap and the shares --------------------------------------------------------------
 
+
 @settings(max_examples=80, deadline=None, derandomize=True)
-@given(ses=st.lists(st.floats(0.02, 2.0), min_size=1, max_size=8),
-       tau2=st.floats(0.0, 0.5), s_u=st.floats(0.5, 4.0), fraction=st.floats(0.01, 0.99))
-def test_cap_is_met_within_one_percent(ses: list[float], tau2: float, s_u: float,
-                                       fraction: float) -> None:
+@given(
+    ses=st.lists(st.floats(0.02, 2.0), min_size=1, max_size=8),
+    tau2=st.floats(0.0, 0.5),
+    s_u=st.floats(0.5, 4.0),
+    fraction=st.floats(0.01, 0.99),
+)
+def test_cap_is_met_within_one_percent(
+    ses: list[float], tau2: float, s_u: float, fraction: float
+) -> None:
     """A common global power weight a on every entry of a normal random-effects pool: the
     prior variance is 1 / sum_i 1/(se_i^2/a + tau^2) (inverse-variance pooling, common
     practice), its ESS s_u^2 / variance. Solve for the cap; check the cap within 1%."""
+
     def ess_of_power(a: float) -> float:
         return s_u**2 * sum(1.0 / (se**2 / a + tau2) for se in ses)
 
@@ -272,8 +329,11 @@ def test_cap_on_a_robust_mixture_by_elir() -> None:
 
     def ess_of_power(a: float) -> float:
         informative = Component("normal", {"loc": 0.0, "scale": 0.1 / math.sqrt(a)})
-        return ess(prior("identity", *robustify((informative,), vague, 0.2)),
-                   method="elir", unit_sd=2.0).value
+        return ess(
+            prior("identity", *with_vague_component((informative,), vague, 0.2)),
+            method="elir",
+            unit_sd=2.0,
+        ).value
 
     a = solve_power_for_cap(ess_of_power, 50.0)
     assert ess_of_power(a) == pytest.approx(50.0, rel=0.01)

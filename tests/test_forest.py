@@ -27,8 +27,15 @@ SIGNATURES = {"png": b"\x89PNG\r\n\x1a\n", "pdf": b"%PDF", "svg": b"<?xml"}
 @pytest.mark.parametrize("fmt", ["png", "svg", "pdf"])
 @pytest.mark.parametrize("scale", ["log", "identity"])
 def test_writes_a_non_empty_file(tmp_path: Path, fmt: str, scale: str) -> None:
-    out = forest_plot(tmp_path / f"forest.{fmt}", LABELS, Y, SE, pool(Y, SE, "reml"),
-                      scale=scale, title="BCG vaccine trials")
+    out = forest_plot(
+        tmp_path / f"forest.{fmt}",
+        LABELS,
+        Y,
+        SE,
+        pool(Y, SE, "reml"),
+        scale=scale,
+        title="BCG vaccine trials",
+    )
     assert out == tmp_path / f"forest.{fmt}"
     data = out.read_bytes()
     assert len(data) > 1000
@@ -64,8 +71,9 @@ def test_identity_scale_shows_analysis_values(tmp_path: Path) -> None:
 
 def test_duck_typed_result_without_weights_or_prediction(tmp_path: Path) -> None:
     # A result from another method only needs these attributes.
-    result = SimpleNamespace(mu=-0.7, ci=(-1.1, -0.3), prediction=None, method="bayes",
-                             k=len(Y), tau2=0.3, i2=None)
+    result = SimpleNamespace(
+        mu=-0.7, ci=(-1.1, -0.3), prediction=None, method="bayes", k=len(Y), tau2=0.3, i2=None
+    )
     text = svg_text(tmp_path / "f.svg", LABELS, Y, SE, result, scale="log")
     assert "not available" in text
     assert "Weight" not in text

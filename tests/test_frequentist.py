@@ -152,8 +152,13 @@ def test_bcg_against_recalled_published_values(method: str) -> None:
 @pytest.mark.parametrize("method", ["reml", "ml"])
 def test_likelihood_estimators_match_direct_maximisation(method: str) -> None:
     restricted = method == "reml"
-    opt = optimize.minimize_scalar(neg_loglik, bounds=(0.0, 10.0), method="bounded",
-                                   args=(Y, VAR, restricted), options={"xatol": 1e-10})
+    opt = optimize.minimize_scalar(
+        neg_loglik,
+        bounds=(0.0, 10.0),
+        method="bounded",
+        args=(Y, VAR, restricted),
+        options={"xatol": 1e-10},
+    )
     assert opt.success
     assert pool(Y, SE, method).tau2 == pytest.approx(opt.x, abs=1e-6)
 
@@ -166,8 +171,12 @@ def test_tau2_is_zero_for_homogeneous_studies(method: str) -> None:
     res = pool(y, se, method)
     assert res.tau2 == 0.0
     assert res.mu == pytest.approx(pool(y, se, "common").mu, abs=1e-12)
-    opt = optimize.minimize_scalar(neg_loglik, bounds=(0.0, 1.0), method="bounded",
-                                   args=(np.array(y), np.array(se) ** 2, method == "reml"))
+    opt = optimize.minimize_scalar(
+        neg_loglik,
+        bounds=(0.0, 1.0),
+        method="bounded",
+        args=(np.array(y), np.array(se) ** 2, method == "reml"),
+    )
     assert opt.x < 1e-4
 
 
@@ -256,9 +265,7 @@ def test_bad_input_is_an_input_error(y, se, method, level, field) -> None:
         assert all(name in str(info.value) for name in METHODS)
 
 
-studies = st.lists(
-    st.tuples(st.floats(-5, 5), st.floats(0.05, 2.0)), min_size=2, max_size=15
-)
+studies = st.lists(st.tuples(st.floats(-5, 5), st.floats(0.05, 2.0)), min_size=2, max_size=15)
 
 
 @seed(20240601)

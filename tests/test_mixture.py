@@ -38,8 +38,10 @@ def test_normal_mixture_quantile_error_is_within_the_bound(shape):
     x = np.linspace(-12, 14, 1201)
     if shape == "bimodal":
         dens = 0.6 * stats.norm.pdf(x, -2, 0.7) + 0.4 * stats.norm.pdf(x, 2, 1.2)
-        truth = [Component("normal", {"loc": -2, "scale": 0.7}, 0.6),
-                 Component("normal", {"loc": 2, "scale": 1.2}, 0.4)]
+        truth = [
+            Component("normal", {"loc": -2, "scale": 0.7}, 0.6),
+            Component("normal", {"loc": 2, "scale": 1.2}, 0.4),
+        ]
         true_q = np.array([mixture_ppf(tuple(truth), q) for q in LEVELS])
         sd = np.sqrt(0.6 * (0.49 + 4) + 0.4 * (1.44 + 4) - (0.6 * -2 + 0.4 * 2) ** 2)
     else:
@@ -85,8 +87,9 @@ def test_gamma_mixture_on_the_log_scale_recovers_a_gamma():
 
 def test_mixture_of_a_bayes_predictive_meets_the_bound():
     events = np.array([11, 29, 11, 248, 47, 372, 10, 499, 45, 65, 141, 3, 29])
-    totals = np.array([139, 303, 220, 12867, 5808, 1451, 629, 88391, 7277, 1665, 27338, 2341,
-                       17854])
+    totals = np.array(
+        [139, 303, 220, 12867, 5808, 1451, 629, 88391, 7277, 1665, 27338, 2341, 17854]
+    )
     pred = fit_binomial(events, totals, "half-t:1,3").predictive
     fit = fit_mixture(pred.x, pred.density, "normal")
     got = np.array([mixture_ppf(fit.components, q) for q in LEVELS])

@@ -23,10 +23,15 @@ from tests.test_frequentist import BCG_COUNTS, RECALLED_BCG, SE, SM_PM_OPTIONS, 
 @pytest.fixture
 def bcg_db(cli, tmp_path: Path) -> Path:
     db = tmp_path / "bcg.db"
-    rows = [[f"bcg{i:02d}", "bcg-tb-risk", "risk_ratio", a, a + b, c, c + d]
-            for i, (a, b, c, d) in enumerate(BCG_COUNTS)]
-    sheet = write_sheet(tmp_path / "bcg.csv", ["source", "quantity", "measure", "events_a",
-                                               "total_a", "events_b", "total_b"], *rows)
+    rows = [
+        [f"bcg{i:02d}", "bcg-tb-risk", "risk_ratio", a, a + b, c, c + d]
+        for i, (a, b, c, d) in enumerate(BCG_COUNTS)
+    ]
+    sheet = write_sheet(
+        tmp_path / "bcg.csv",
+        ["source", "quantity", "measure", "events_a", "total_a", "events_b", "total_b"],
+        *rows,
+    )
     assert cli("import", sheet, "--db", db).code == 0
     return db
 
@@ -37,8 +42,9 @@ def pooled(cli, db: Path, *args: str) -> dict:
     return json.loads(result.stdout)
 
 
-@pytest.mark.parametrize(("method", "sm_method", "options"),
-                         [("dl", "dl", {}), ("pm", "pm", SM_PM_OPTIONS)])
+@pytest.mark.parametrize(
+    ("method", "sm_method", "options"), [("dl", "dl", {}), ("pm", "pm", SM_PM_OPTIONS)]
+)
 def test_dl_and_pm_match_statsmodels(cli, bcg_db: Path, method, sm_method, options) -> None:
     doc = pooled(cli, bcg_db, "--method", method)
     reference = combine_effects(Y, SE**2, method_re=sm_method, **options)
@@ -60,8 +66,9 @@ def test_reml_matches_published_values(cli, bcg_db: Path) -> None:
 def test_bayes_json_and_library_agree(cli, bcg_db: Path) -> None:
     doc = pooled(cli, bcg_db, "--method", "bayes", "--tau-prior", "half-normal:1")
     assert set(doc["predictive"]["quantiles"]) >= {"0.025", "0.5", "0.975"}
-    library = pool_entries(Ledger.open(str(bcg_db)).entries(), method="bayes",
-                           tau_prior="half-normal:1")
+    library = pool_entries(
+        Ledger.open(str(bcg_db)).entries(), method="bayes", tau_prior="half-normal:1"
+    )
     assert doc["predictive"]["quantiles"] == library.to_dict()["predictive"]["quantiles"]
     # The predictive is wider than the credible interval of mu (it adds tau).
     q = doc["predictive"]["quantiles"]
@@ -75,12 +82,15 @@ def test_forest_plot_is_written(cli, bcg_db: Path, tmp_path: Path) -> None:
     assert figure.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n" and figure.stat().st_size > 10_000
 
 
-@pytest.mark.parametrize(("args", "field"), [
-    (["--method", "magic"], "method"),
-    (["--method", "reml", "--likelihood", "exact"], "likelihood"),
-    (["--method", "bayes", "--tau-prior", "uniform:1"], "tau_prior"),
-    (["--method", "bayes", "--likelihood", "exact"], "likelihood"),
-])
+@pytest.mark.parametrize(
+    ("args", "field"),
+    [
+        (["--method", "magic"], "method"),
+        (["--method", "reml", "--likelihood", "exact"], "likelihood"),
+        (["--method", "bayes", "--tau-prior", "uniform:1"], "tau_prior"),
+        (["--method", "bayes", "--likelihood", "exact"], "likelihood"),
+    ],
+)
 def test_bad_pool_options_exit_2(cli, bcg_db: Path, args: list[str], field: str) -> None:
     result = cli("pool", "--quantity", "bcg-tb-risk", "--db", bcg_db, *args)
     assert result.code == 2 and f"'{field}'" in result.stderr

@@ -38,11 +38,14 @@ def _all_best() -> list[Rating]:
 
 
 def _ratings(levels: dict[str, str]) -> list[Rating]:
-    return [Rating(d, levels.get(d, levels_for(d)[0]), rationale="stated in the test",
-                   rule="test") for d in DOMAINS]
+    return [
+        Rating(d, levels.get(d, levels_for(d)[0]), rationale="stated in the test", rule="test")
+        for d in DOMAINS
+    ]
 
 
 # --- ratings ----------------------------------------------------------------------------------
+
 
 def test_rationale_required_below_best_level() -> None:
     Rating("population", "direct")  # the best level needs none
@@ -84,8 +87,11 @@ def test_power_factors_multiply_and_bias_variances_add() -> None:
     mapping = DEFAULT_MAPPING
     ratings = _ratings({"population": "serious", "setting": "minor", "risk_of_bias": "high"})
     d = discount_for(ratings, mapping, "both")
-    parts = [mapping.get("population", "serious"), mapping.get("setting", "minor"),
-             mapping.get("risk_of_bias", "high")]
+    parts = [
+        mapping.get("population", "serious"),
+        mapping.get("setting", "minor"),
+        mapping.get("risk_of_bias", "high"),
+    ]
     assert d.power == pytest.approx(math.prod(p.power for p in parts))
     assert d.bias_var == pytest.approx(sum(p.bias_var for p in parts))
     assert discount_for(ratings, mapping, "power") == Discount(power=d.power)
@@ -93,6 +99,7 @@ def test_power_factors_multiply_and_bias_variances_add() -> None:
 
 
 # --- the closed forms, against numerical integration -------------------------------------------
+
 
 @pytest.mark.parametrize(("y", "se", "a"), [(0.3, 0.2, 0.5), (-1.2, 0.05, 0.1), (2.0, 1.5, 0.9)])
 def test_power_weight_multiplies_normal_precision(y: float, se: float, a: float) -> None:
@@ -111,18 +118,24 @@ def test_power_weight_multiplies_normal_precision(y: float, se: float, a: float)
     assert se_adj**2 == pytest.approx(var, rel=1e-7)
 
 
-@pytest.mark.parametrize(("y", "se", "shift", "bias_var"),
-                         [(0.4, 0.1, 0.15, 0.04), (-0.7, 0.3, -0.2, 0.25)])
-def test_additive_bias_adds_its_variance(y: float, se: float, shift: float,
-                                         bias_var: float) -> None:
+@pytest.mark.parametrize(
+    ("y", "se", "shift", "bias_var"), [(0.4, 0.1, 0.15, 0.04), (-0.7, 0.3, -0.2, 0.25)]
+)
+def test_additive_bias_adds_its_variance(
+    y: float, se: float, shift: float, bias_var: float
+) -> None:
     """Turner et al. (2009): y ~ N(theta + b, se^2), b ~ N(shift, v) integrates to
     y - shift ~ N(theta, se^2 + v). Reference: the integral over b by scipy quad."""
     y_adj, se_adj = apply_normal(y, se, Discount(bias_shift=shift, bias_var=bias_var))
     assert y_adj == pytest.approx(y - shift)
     for theta in (-1.0, 0.0, 0.3, 1.1):
         marginal = integrate.quad(
-            lambda b, theta=theta: stats.norm.pdf(y, theta + b, se)
-            * stats.norm.pdf(b, shift, math.sqrt(bias_var)), -np.inf, np.inf)[0]
+            lambda b, theta=theta: (
+                stats.norm.pdf(y, theta + b, se) * stats.norm.pdf(b, shift, math.sqrt(bias_var))
+            ),
+            -np.inf,
+            np.inf,
+        )[0]
         assert stats.norm.pdf(y_adj, theta, se_adj) == pytest.approx(marginal, rel=1e-8)
 
 
@@ -135,23 +148,31 @@ def test_power_then_bias_order() -> None:
     ratios = []
     for theta in (-0.5, 0.0, 0.4, 1.0):
         numeric = integrate.quad(
-            lambda b, theta=theta: math.exp(a * stats.norm.logpdf(y, theta + b, se))
-            * stats.norm.pdf(b, shift, math.sqrt(v)), -np.inf, np.inf)[0]
+            lambda b, theta=theta: (
+                math.exp(a * stats.norm.logpdf(y, theta + b, se))
+                * stats.norm.pdf(b, shift, math.sqrt(v))
+            ),
+            -np.inf,
+            np.inf,
+        )[0]
         ratios.append(numeric / stats.norm.pdf(y_adj, theta, se_adj))
     assert max(ratios) == pytest.approx(min(ratios), rel=1e-7)
 
 
 # --- mappings ---------------------------------------------------------------------------------
 
-def _ladder(powers: list[float], sds: list[float], names: tuple[str, ...]
-            ) -> dict[str, LevelDiscount]:
+
+def _ladder(
+    powers: list[float], sds: list[float], names: tuple[str, ...]
+) -> dict[str, LevelDiscount]:
     return {n: LevelDiscount(p, s * s) for n, p, s in zip(names, powers, sds, strict=True)}
 
 
 def test_custom_mapping_must_be_monotone() -> None:
     good = {d: DEFAULT_MAPPING.levels[d] for d in DOMAINS}
-    bad_power = dict(good, outcome=_ladder([1, 0.5, 0.7, 0.2], [0, 0.1, 0.2, 0.3],
-                                           INDIRECTNESS_LEVELS))
+    bad_power = dict(
+        good, outcome=_ladder([1, 0.5, 0.7, 0.2], [0, 0.1, 0.2, 0.3], INDIRECTNESS_LEVELS)
+    )
     with pytest.raises(InputError) as info:
         DiscountMapping(bad_power)
     assert info.value.field == "outcome"
@@ -159,8 +180,7 @@ def test_custom_mapping_must_be_monotone() -> None:
     with pytest.raises(InputError) as info:
         DiscountMapping(bad_var)
     assert info.value.field == "risk_of_bias"
-    out_of_range = dict(good, design=_ladder([1, 0.9, 0.6, 0.0], [0, 0, 0, 0],
-                                             INDIRECTNESS_LEVELS))
+    out_of_range = dict(good, design=_ladder([1, 0.9, 0.6, 0.0], [0, 0, 0, 0], INDIRECTNESS_LEVELS))
     with pytest.raises(InputError) as info:
         DiscountMapping(out_of_range)
     assert info.value.field == "design"
@@ -181,32 +201,41 @@ def test_mapping_from_definition_overrides_base() -> None:
 
 # --- property: a worse rating never narrows the prior nor raises its ESS ------------------------
 
+
 @st.composite
 def monotone_mappings(draw: st.DrawFn) -> DiscountMapping:
     levels = {}
     for domain in DOMAINS:
         k = len(levels_for(domain))
-        powers = sorted(draw(st.lists(st.floats(0.05, 1.0), min_size=k, max_size=k)),
-                        reverse=True)
+        powers = sorted(draw(st.lists(st.floats(0.05, 1.0), min_size=k, max_size=k)), reverse=True)
         variances = sorted(draw(st.lists(st.floats(0.0, 0.5), min_size=k, max_size=k)))
-        levels[domain] = {name: LevelDiscount(p, v) for name, p, v
-                          in zip(levels_for(domain), powers, variances, strict=True)}
+        levels[domain] = {
+            name: LevelDiscount(p, v)
+            for name, p, v in zip(levels_for(domain), powers, variances, strict=True)
+        }
     return DiscountMapping(levels)
 
 
 @settings(max_examples=60, deadline=None, derandomize=True)
-@given(mapping=monotone_mappings(),
-       entries=st.lists(st.tuples(st.floats(0.05, 2.0),
-                                  st.dictionaries(st.sampled_from(DOMAINS),
-                                                  st.integers(0, 3))),
-                        min_size=1, max_size=5),
-       worsen=st.tuples(st.integers(0, 4), st.sampled_from(DOMAINS)),
-       tau2=st.floats(0.0, 0.3), mechanism=st.sampled_from(["power", "bias", "both"]))
-def test_worse_rating_never_narrows_nor_raises_ess(mapping: DiscountMapping, entries: list,
-                                                  worsen: tuple, tau2: float,
-                                                  mechanism: str) -> None:
+@given(
+    mapping=monotone_mappings(),
+    entries=st.lists(
+        st.tuples(
+            st.floats(0.05, 2.0), st.dictionaries(st.sampled_from(DOMAINS), st.integers(0, 3))
+        ),
+        min_size=1,
+        max_size=5,
+    ),
+    worsen=st.tuples(st.integers(0, 4), st.sampled_from(DOMAINS)),
+    tau2=st.floats(0.0, 0.3),
+    mechanism=st.sampled_from(["power", "bias", "both"]),
+)
+def test_worse_rating_never_narrows_nor_raises_ess(
+    mapping: DiscountMapping, entries: list, worsen: tuple, tau2: float, mechanism: str
+) -> None:
     """Pool the entries by inverse variance (common practice) into a normal prior; make one
     rating one level worse; the prior's sd must not fall and its ESS must not rise."""
+
     def level_of(domain: str, index: int) -> str:
         names = levels_for(domain)
         return names[min(index, len(names) - 1)]
@@ -214,8 +243,7 @@ def test_worse_rating_never_narrows_nor_raises_ess(mapping: DiscountMapping, ent
     def pooled_sd(levels_per_entry: list[dict[str, str]]) -> float:
         precision = 0.0
         for (se, _), levels in zip(entries, levels_per_entry, strict=True):
-            _, se_adj = apply_normal(0.0, se, discount_for(_ratings(levels), mapping,
-                                                           mechanism))
+            _, se_adj = apply_normal(0.0, se, discount_for(_ratings(levels), mapping, mechanism))
             precision += 1.0 / (se_adj**2 + tau2)
         return 1.0 / math.sqrt(precision)
 
@@ -234,4 +262,3 @@ def test_worse_rating_never_narrows_nor_raises_ess(mapping: DiscountMapping, ent
         prior = Prior("p", 1, "d", "identity", (Component("normal", {"loc": 0.0, "scale": sd}),))
         ess_values.append(ess(prior, method="moment", unit_sd=2.0).value)
     assert ess_values[1] <= ess_values[0] * (1 + 1e-12)
-

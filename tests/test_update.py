@@ -16,23 +16,30 @@ from scipy import integrate, special, stats
 
 from registry.errors import InputError
 from registry.priors.update import (
-    robustify,
     unit_information_component,
     update_beta,
     update_gamma,
     update_normal,
+    with_vague_component,
 )
 from registry.priors.value import Component
 
 
 def _quad_posterior(components, log_lik, lo: float, hi: float, points=None):
     """Posterior component weights, mean and variance by quad over theta."""
+
     def joint(j: int, power: int):
         c = components[j]
         dist = c.frozen()
         return integrate.quad(
             lambda t: t**power * math.exp(math.log(c.weight) + dist.logpdf(t) + log_lik(t)),
-            lo, hi, points=points, limit=400, epsabs=0, epsrel=1e-11)[0]
+            lo,
+            hi,
+            points=points,
+            limit=400,
+            epsabs=0,
+            epsrel=1e-11,
+        )[0]
 
     mass = [joint(j, 0) for j in range(len(components))]
     total = sum(mass)
@@ -47,21 +54,24 @@ def _mixture_moments(components) -> tuple[float, float]:
     return mean, second - mean**2
 
 
-# --- robustify ---------------------------------------------------------------------------
+# --- with_vague_component ---------------------------------------------------------------------------
 
-def test_robustify_weights() -> None:
-    informative = (Component("normal", {"loc": 0.2, "scale": 0.1}, 0.3),
-                   Component("normal", {"loc": 0.5, "scale": 0.2}, 0.7))
+
+def test_with_vague_component_weights() -> None:
+    informative = (
+        Component("normal", {"loc": 0.2, "scale": 0.1}, 0.3),
+        Component("normal", {"loc": 0.5, "scale": 0.2}, 0.7),
+    )
     vague = unit_information_component(0.41, 2.0, "normal", "identity")
-    mixed = robustify(informative, vague, 0.25)
+    mixed = with_vague_component(informative, vague, 0.25)
     assert [c.weight for c in mixed] == pytest.approx([0.75 * 0.3, 0.75 * 0.7, 0.25])
     assert mixed[-1].params == vague.params
-    assert robustify(informative, vague, 0.0) == informative
+    assert with_vague_component(informative, vague, 0.0) == informative
     for bad in (1.0, -0.1, math.nan):
         with pytest.raises(InputError):
-            robustify(informative, vague, bad)
+            with_vague_component(informative, vague, bad)
     with pytest.raises(InputError):
-        robustify(informative, Component("beta", {"a": 0.5, "b": 0.5}), 0.2)
+        with_vague_component(informative, Component("beta", {"a": 0.5, "b": 0.5}), 0.2)
 
 
 def test_unit_information_components() -> None:
@@ -91,48 +101,68 @@ def test_unit_information_components() -> None:
 
 # --- posterior weights against quad -------------------------------------------------------
 
+
 @pytest.mark.parametrize("y", [0.25, 1.5, -2.0])
 def test_normal_robust_mixture_against_quad(y: float) -> None:
     se = 0.3
-    components = robustify((Component("normal", {"loc": 0.2, "scale": 0.15}),),
-                           unit_information_component(0.2, 2.0, "normal", "identity"), 0.2)
+    components = with_vague_component(
+        (Component("normal", {"loc": 0.2, "scale": 0.15}),),
+        unit_information_component(0.2, 2.0, "normal", "identity"),
+        0.2,
+    )
     posterior = update_normal(components, y, se)
     weights, mean, var = _quad_posterior(
-        components, lambda t: stats.norm.logpdf(y, t, se), -15, 15, points=[0.2, y])
+        components, lambda t: stats.norm.logpdf(y, t, se), -15, 15, points=[0.2, y]
+    )
     assert [c.weight for c in posterior] == pytest.approx(weights, rel=1e-7)
     assert _mixture_moments(posterior) == pytest.approx((mean, var), rel=1e-7)
 
 
 @pytest.mark.parametrize(("events", "n"), [(3, 40), (25, 40), (0, 12), (7.5, 20.0)])
 def test_beta_robust_mixture_against_quad(events: float, n: float) -> None:
-    components = robustify((Component("beta", {"a": 8.0, "b": 32.0}, 0.6),
-                            Component("beta", {"a": 3.0, "b": 9.0}, 0.4)),
-                           unit_information_component(0.2, None, "beta", "probability"), 0.1)
+    components = with_vague_component(
+        (
+            Component("beta", {"a": 8.0, "b": 32.0}, 0.6),
+            Component("beta", {"a": 3.0, "b": 9.0}, 0.4),
+        ),
+        unit_information_component(0.2, None, "beta", "probability"),
+        0.1,
+    )
 
     def log_lik(t: float) -> float:
         # binomial log likelihood, written out so non-integer counts work too
         return events * math.log(t) + (n - events) * math.log1p(-t)
 
     posterior = update_beta(components, events, n)
-    weights, mean, var = _quad_posterior(components, log_lik, 0.0, 1.0,
-                                         points=[0.05, 0.2, 0.5])
+    weights, mean, var = _quad_posterior(components, log_lik, 0.0, 1.0, points=[0.05, 0.2, 0.5])
     assert [c.weight for c in posterior] == pytest.approx(weights, rel=1e-6)
     assert _mixture_moments(posterior) == pytest.approx((mean, var), rel=1e-6)
     if float(events).is_integer():  # scipy's pmf as the likelihood gives the same weights
         w_pmf, _, _ = _quad_posterior(
-            components, lambda t: stats.binom.logpmf(int(events), int(n), t), 0.0, 1.0,
-            points=[0.05, 0.2, 0.5])
+            components,
+            lambda t: stats.binom.logpmf(int(events), int(n), t),
+            0.0,
+            1.0,
+            points=[0.05, 0.2, 0.5],
+        )
         assert w_pmf == pytest.approx(weights, rel=1e-8)
 
 
 @pytest.mark.parametrize(("events", "exposure"), [(4, 10.0), (30, 12.0), (0, 3.0)])
 def test_gamma_robust_mixture_against_quad(events: int, exposure: float) -> None:
-    components = robustify((Component("gamma", {"a": 20.0, "scale": 0.025}),),
-                           unit_information_component(0.5, None, "gamma", "rate"), 0.2)
+    components = with_vague_component(
+        (Component("gamma", {"a": 20.0, "scale": 0.025}),),
+        unit_information_component(0.5, None, "gamma", "rate"),
+        0.2,
+    )
     posterior = update_gamma(components, events, exposure)
     weights, mean, var = _quad_posterior(
-        components, lambda t: stats.poisson.logpmf(events, t * exposure), 0.0, 60.0,
-        points=[0.5, events / exposure + 1e-3])
+        components,
+        lambda t: stats.poisson.logpmf(events, t * exposure),
+        0.0,
+        60.0,
+        points=[0.5, events / exposure + 1e-3],
+    )
     assert [c.weight for c in posterior] == pytest.approx(weights, rel=1e-6)
     assert _mixture_moments(posterior) == pytest.approx((mean, var), rel=1e-6)
 
@@ -141,15 +171,21 @@ def test_vague_weight_rises_under_conflict() -> None:
     """Schmidli et al. (2014): with data in conflict the robust mixture's vague weight
     rises; with data at the prior mean it falls."""
     w = 0.2
-    components = robustify((Component("normal", {"loc": 0.0, "scale": 0.1}),),
-                           unit_information_component(0.0, 1.0, "normal", "identity"), w)
+    components = with_vague_component(
+        (Component("normal", {"loc": 0.0, "scale": 0.1}),),
+        unit_information_component(0.0, 1.0, "normal", "identity"),
+        w,
+    )
     assert update_normal(components, 0.0, 0.1)[-1].weight < w
     assert update_normal(components, 1.0, 0.1)[-1].weight > 0.9
 
 
 def test_underflowed_component_is_dropped() -> None:
-    components = robustify((Component("normal", {"loc": 0.0, "scale": 0.01}),),
-                           Component("normal", {"loc": 0.0, "scale": 100.0}), 0.1)
+    components = with_vague_component(
+        (Component("normal", {"loc": 0.0, "scale": 0.01}),),
+        Component("normal", {"loc": 0.0, "scale": 100.0}),
+        0.1,
+    )
     posterior = update_normal(components, 500.0, 0.01)
     assert len(posterior) == 1 and posterior[0].weight == 1.0
     assert posterior[0].params["loc"] == pytest.approx(500.0, rel=1e-6)

@@ -40,8 +40,9 @@ def emit(prior: Prior, to: str, *, param: str | None = None) -> str:
     """
     if to == "json":
         if param is not None:
-            raise InputError("--param has no meaning for --to json, which names no parameter",
-                             field="param")
+            raise InputError(
+                "--param has no meaning for --to json, which names no parameter", field="param"
+            )
         return json_doc.render(prior)
     if to not in _CODE:
         raise InputError(f"unknown language {to!r}; one of {', '.join(LANGUAGES)}", field="to")

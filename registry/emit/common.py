@@ -70,8 +70,10 @@ def header(prior: Prior, language: str, param: str, natural: str | None) -> list
     reads an encoding declaration (PEP 263).
     """
     q = [prior.ppf(p) for p in (0.025, 0.5, 0.975)]
-    mixture = " + ".join(f"{c.weight:.6g} x {_describe(c)}" if prior.is_mixture
-                         else _describe(c) for c in prior.components)
+    mixture = " + ".join(
+        f"{c.weight:.6g} x {_describe(c)}" if prior.is_mixture else _describe(c)
+        for c in prior.components
+    )
     lines = [
         f"Prior emitted by priorledger {__version__} for {language}.",
         "Generated code: to change a number, rebuild the prior and emit it again.",
@@ -93,8 +95,11 @@ def header(prior: Prior, language: str, param: str, natural: str | None) -> list
             f"95% interval [{nq[0]:.4g}, {nq[2]:.4g}]"
         )
     lines += [f"trace: priorledger trace {shlex.quote(prior.label)}", CAUTION]
-    return [part for line in lines
-            for part in textwrap.wrap(sanitize(line, limit=400), 92, break_on_hyphens=False)]
+    return [
+        part
+        for line in lines
+        for part in textwrap.wrap(sanitize(line, limit=400), 92, break_on_hyphens=False)
+    ]
 
 
 def comment_block(lines: list[str], marker: str) -> list[str]:

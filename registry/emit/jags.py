@@ -49,14 +49,16 @@ def render(prior: Prior, name: str) -> str:
     if not prior.is_mixture:
         lines.append(_draw(prior, 0, name))
     else:
-        weight, component, draw = (check_identifier(f"{name[:52]}_{part}", "jags")
-                                   for part in ("weight", "component", "draw"))
+        weight, component, draw = (
+            check_identifier(f"{name[:52]}_{part}", "jags")
+            for part in ("weight", "component", "draw")
+        )
         lines.append(f"# mixture: {name} is the draw of component {component}")
-        lines += [f"{weight}[{j}] <- {literal(c.weight)}"
-                  for j, c in enumerate(prior.components, start=1)]
+        lines += [
+            f"{weight}[{j}] <- {literal(c.weight)}" for j, c in enumerate(prior.components, start=1)
+        ]
         lines.append(f"{component} ~ dcat({weight}[])")
-        lines += [_draw(prior, j - 1, f"{draw}[{j}]")
-                  for j in range(1, len(prior.components) + 1)]
+        lines += [_draw(prior, j - 1, f"{draw}[{j}]") for j in range(1, len(prior.components) + 1)]
         lines.append(f"{name} <- {draw}[{component}]")
     if natural is not None:
         lines.append(f"{natural} <- {_NATURAL[prior.scale]}({name})")

@@ -21,8 +21,7 @@ _QUANTILES = (0.025, 0.05, 0.25, 0.5, 0.75, 0.95, 0.975)
 
 
 def render(prior: Prior) -> str:
-    doc: dict[str, Any] = {"format": FORMAT, "format_version": FORMAT_VERSION,
-                           **prior.to_dict()}
+    doc: dict[str, Any] = {"format": FORMAT, "format_version": FORMAT_VERSION, **prior.to_dict()}
     doc["summary"] = {
         "meaning": meaning(prior),
         "support": prior.components[0].support,
@@ -41,16 +40,19 @@ def load(text: str) -> Prior:
     except json.JSONDecodeError as err:
         raise InputError(f"not JSON: {err.msg} at line {err.lineno}", row=err.lineno) from None
     if not isinstance(doc, dict) or doc.get("format") != FORMAT:
-        raise InputError(f"not a priorledger prior document (format must be {FORMAT!r})",
-                         field="format")
+        raise InputError(
+            f"not a priorledger prior document (format must be {FORMAT!r})", field="format"
+        )
     version = doc.get("format_version")
     if version != FORMAT_VERSION:
-        raise InputError(f"format_version {version!r} is not one this priorledger reads "
-                         f"({FORMAT_VERSION}); upgrade priorledger", field="format_version")
+        raise InputError(
+            f"format_version {version!r} is not one this priorledger reads "
+            f"({FORMAT_VERSION}); upgrade priorledger",
+            field="format_version",
+        )
     try:
         return Prior.from_dict(doc)
     except KeyError as err:
         raise InputError(f"the document lacks {err.args[0]!r}", field=str(err.args[0])) from None
     except (TypeError, ValueError) as err:
-        raise InputError(f"the document has a malformed field: {err}", field="components") \
-            from None
+        raise InputError(f"the document has a malformed field: {err}", field="components") from None

@@ -134,15 +134,16 @@ def default_param(prior_name: str, quantity: str, scale: str, language: str) -> 
     try:
         return check_identifier(name, language)
     except InputError as err:
-        raise InputError(f"{err.message} (derived from the prior; name one with --param)",
-                         field="param") from None
+        raise InputError(
+            f"{err.message} (derived from the prior; name one with --param)", field="param"
+        ) from None
 
 
 def natural_name(param: str, scale: str, language: str) -> str:
     """The name of the natural-scale transform of ``param``: the name without its scale
     prefix where that leaves a safe identifier, else ``param`` + ``_natural``."""
     prefix = _SCALE_PREFIX.get(scale, "")
-    stripped = param[len(prefix):] if prefix and param.startswith(prefix) else ""
+    stripped = param[len(prefix) :] if prefix and param.startswith(prefix) else ""
     if stripped[:1].isalpha():
         try:
             return check_identifier(stripped, language)

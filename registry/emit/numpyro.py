@@ -27,8 +27,7 @@ from registry.priors.value import Component, Prior
 
 FORMS: Forms = {
     "normal": ("dist.Normal", lambda p: {"loc": p["loc"], "scale": p["scale"]}),
-    "student_t": ("dist.StudentT",
-                  lambda p: {"df": p["df"], "loc": p["loc"], "scale": p["scale"]}),
+    "student_t": ("dist.StudentT", lambda p: {"df": p["df"], "loc": p["loc"], "scale": p["scale"]}),
     "lognormal": ("dist.LogNormal", lambda p: {"loc": math.log(p["scale"]), "scale": p["s"]}),
     "beta": ("dist.Beta", lambda p: {"concentration1": p["a"], "concentration0": p["b"]}),
     "gamma": ("dist.Gamma", lambda p: {"concentration": p["a"], "rate": 1.0 / p["scale"]}),
@@ -44,8 +43,7 @@ def _component(c: Component) -> str:
 
 def render(prior: Prior, name: str) -> str:
     natural = natural_name(name, prior.scale, "numpyro") if has_natural(prior) else None
-    lines = comment_block(header(prior, "NumPyro (inside a model function)", name, natural),
-                          "#")
+    lines = comment_block(header(prior, "NumPyro (inside a model function)", name, natural), "#")
     if not prior.is_mixture:
         lines.append(f'{name} = numpyro.sample("{name}", {_component(prior.components[0])})')
     else:
@@ -63,6 +61,8 @@ def render(prior: Prior, name: str) -> str:
             ")",
         ]
     if natural is not None:
-        lines.append(f'{natural} = numpyro.deterministic("{natural}", '
-                     f"dist.transforms.{_NATURAL[prior.scale]}()({name}))")
+        lines.append(
+            f'{natural} = numpyro.deterministic("{natural}", '
+            f"dist.transforms.{_NATURAL[prior.scale]}()({name}))"
+        )
     return "\n".join(lines) + "\n"

@@ -25,8 +25,7 @@ from registry.priors.value import Component, Prior
 
 FORMS: Forms = {
     "normal": ("pm.Normal", lambda p: {"mu": p["loc"], "sigma": p["scale"]}),
-    "student_t": ("pm.StudentT",
-                  lambda p: {"nu": p["df"], "mu": p["loc"], "sigma": p["scale"]}),
+    "student_t": ("pm.StudentT", lambda p: {"nu": p["df"], "mu": p["loc"], "sigma": p["scale"]}),
     "lognormal": ("pm.LogNormal", lambda p: {"mu": math.log(p["scale"]), "sigma": p["s"]}),
     "beta": ("pm.Beta", lambda p: {"alpha": p["a"], "beta": p["b"]}),
     "gamma": ("pm.Gamma", lambda p: {"alpha": p["a"], "beta": 1.0 / p["scale"]}),

@@ -56,6 +56,9 @@ def render(prior: Prior, name: str) -> str:
     lines += ["model {", *(f"  {line}" for line in density(prior, name))]
     lines.append("}")
     if natural is not None:
-        lines += ["generated quantities {",
-                  f"  real {natural} = {_NATURAL[prior.scale]}({name});", "}"]
+        lines += [
+            "generated quantities {",
+            f"  real {natural} = {_NATURAL[prior.scale]}({name});",
+            "}",
+        ]
     return "\n".join(lines) + "\n"

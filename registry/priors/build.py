@@ -307,7 +307,7 @@ def _at_power(
 ) -> dict[str, Any]:
     """One pass of steps 2-6 at a given global power weight."""
     from registry.priors.ess import ess_all
-    from registry.priors.update import robustify, unit_information_component
+    from registry.priors.update import unit_information_component, with_vague_component
 
     discounts = _discounts(ratings, definition, global_power)
     pooled = pool_entries(
@@ -331,7 +331,7 @@ def _at_power(
         vague = unit_information_component(
             informative.mean(), model["unit_sd"], family, scale, likelihood=model["likelihood"]
         )
-        components = robustify(components, vague, weight)
+        components = with_vague_component(components, vague, weight)
         notes.append(
             f"robust mixture: a vague component of weight {weight} worth one unit "
             f"of data ({model['unit']}; a unit-information prior, Schmidli et al. "

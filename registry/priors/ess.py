@@ -98,8 +98,13 @@ class DataModel:
         return np.exp(phi)
 
 
-def data_model(scale: str, *, unit_sd: float | None = None, likelihood: str | None = None,
-               unit: str | None = None) -> DataModel:
+def data_model(
+    scale: str,
+    *,
+    unit_sd: float | None = None,
+    likelihood: str | None = None,
+    unit: str | None = None,
+) -> DataModel:
     """Resolve the data model of one unit for a prior on `scale`.
 
     Without `likelihood`: a given `unit_sd` means normal data; else probability and logit
@@ -121,23 +126,29 @@ def data_model(scale: str, *, unit_sd: float | None = None, likelihood: str | No
                 f"the ESS of a prior on the {scale} scale needs unit_sd (the sd of one "
                 "unit's observation on that scale)"
                 + (" or likelihood='poisson' for a log rate" if scale == "log" else ""),
-                field="unit_sd")
+                field="unit_sd",
+            )
     if likelihood not in LIKELIHOODS:
-        raise InputError(f"likelihood must be one of {', '.join(LIKELIHOODS)}, got "
-                         f"{likelihood!r}", field="likelihood")
+        raise InputError(
+            f"likelihood must be one of {', '.join(LIKELIHOODS)}, got {likelihood!r}",
+            field="likelihood",
+        )
     if scale not in _SCALES_FOR[likelihood]:
-        raise InputError(f"a {likelihood} data model takes a prior on the "
-                         f"{' or '.join(_SCALES_FOR[likelihood])} scale, not {scale}",
-                         field="scale")
+        raise InputError(
+            f"a {likelihood} data model takes a prior on the "
+            f"{' or '.join(_SCALES_FOR[likelihood])} scale, not {scale}",
+            field="scale",
+        )
     if likelihood == "normal":
         if unit_sd is None and scale == "fisher_z":
             unit_sd = 1.0
         if unit_sd is None or not (math.isfinite(unit_sd) and unit_sd > 0):
-            raise InputError(f"unit_sd must be finite and positive, got {unit_sd}",
-                             field="unit_sd")
+            raise InputError(f"unit_sd must be finite and positive, got {unit_sd}", field="unit_sd")
     elif unit_sd is not None:
-        raise InputError(f"a {likelihood} data model fixes the unit information; do not give "
-                         "unit_sd", field="unit_sd")
+        raise InputError(
+            f"a {likelihood} data model fixes the unit information; do not give unit_sd",
+            field="unit_sd",
+        )
     if unit is None:
         unit = "units of exposure" if likelihood == "poisson" else "participants"
     return DataModel(likelihood, scale, None if unit_sd is None else float(unit_sd), unit)
@@ -153,8 +164,12 @@ class EssResult:
     details: Mapping[str, Any] = field(default_factory=dict)
 
     def to_dict(self) -> dict[str, Any]:
-        return {"value": self.value, "method": self.method, "unit": self.unit,
-                "details": dict(self.details)}
+        return {
+            "value": self.value,
+            "method": self.method,
+            "unit": self.unit,
+            "details": dict(self.details),
+        }
 
 
 # --- log densities and their derivatives on the canonical coordinate -----------------------
@@ -178,26 +193,37 @@ def _canonical_terms(c: Component, phi: np.ndarray) -> tuple[np.ndarray, ...]:
     if c.family == "student_t":
         nu, d, s = p["df"], phi - p["loc"], p["scale"]
         denom = nu * s * s + d * d
-        log_f = (special.gammaln((nu + 1) / 2) - special.gammaln(nu / 2)
-                 - 0.5 * math.log(nu * math.pi) - math.log(s)
-                 - (nu + 1) / 2 * np.log1p(d * d / (nu * s * s)))
+        log_f = (
+            special.gammaln((nu + 1) / 2)
+            - special.gammaln(nu / 2)
+            - 0.5 * math.log(nu * math.pi)
+            - math.log(s)
+            - (nu + 1) / 2 * np.log1p(d * d / (nu * s * s))
+        )
         return (log_f, -(nu + 1) * d / denom, -(nu + 1) * (nu * s * s - d * d) / denom**2)
     if c.family == "lognormal":  # log x is normal(log scale, s)
         return _normal_terms(phi, math.log(p["scale"]), p["s"])
     if c.family == "gamma":  # density of log x: a phi - e^phi / scale - log Gamma(a) - a log scale
         a, scale = p["a"], p["scale"]
         lam = np.exp(phi)
-        return (a * phi - lam / scale - special.gammaln(a) - a * math.log(scale),
-                a - lam / scale, -lam / scale)
+        return (
+            a * phi - lam / scale - special.gammaln(a) - a * math.log(scale),
+            a - lam / scale,
+            -lam / scale,
+        )
     # beta; density of logit x: a phi - (a + b) log(1 + e^phi) - log B(a, b)
     a, b = p["a"], p["b"]
     x = special.expit(phi)
-    return (a * phi - (a + b) * np.logaddexp(0.0, phi) - special.betaln(a, b),
-            a - (a + b) * x, -(a + b) * x * (1.0 - x))
+    return (
+        a * phi - (a + b) * np.logaddexp(0.0, phi) - special.betaln(a, b),
+        a - (a + b) * x,
+        -(a + b) * x * (1.0 - x),
+    )
 
 
-def _mixture_derivatives(components: tuple[Component, ...],
-                         phi: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+def _mixture_derivatives(
+    components: tuple[Component, ...], phi: np.ndarray
+) -> tuple[np.ndarray, np.ndarray]:
     """d/dphi log p and -d2/dphi2 log p for p(phi) = sum_j w_j f_j(phi).
 
     With responsibilities r_j, log-density gradients g_j and curvatures h_j:
@@ -205,8 +231,7 @@ def _mixture_derivatives(components: tuple[Component, ...],
     (differentiating the log of a sum).
     """
     terms = [_canonical_terms(c, phi) for c in components]
-    log_r = np.stack([math.log(c.weight) + t[0] for c, t in zip(components, terms,
-                                                                  strict=True)])
+    log_r = np.stack([math.log(c.weight) + t[0] for c, t in zip(components, terms, strict=True)])
     r = np.exp(log_r - log_r.max(axis=0))
     r /= r.sum(axis=0)
     g = np.stack([t[1] for t in terms])
@@ -224,8 +249,11 @@ def _canonical_quantile(c: Component, u: float) -> float:
         return p["loc"] + p["scale"] * float(special.stdtrit(p["df"], u))
     if c.family == "lognormal":
         return math.log(p["scale"]) + p["s"] * float(special.ndtri(u))
-    x = (float(special.gammaincinv(p["a"], u)) * p["scale"] if c.family == "gamma"
-         else float(special.betaincinv(p["a"], p["b"], u)))
+    x = (
+        float(special.gammaincinv(p["a"], u)) * p["scale"]
+        if c.family == "gamma"
+        else float(special.betaincinv(p["a"], p["b"], u))
+    )
     return float(_to_canonical(c.support, x))
 
 
@@ -270,39 +298,50 @@ def _vague_limit_curvature(support: str, x: float) -> float:
 def _check_support(prior: Prior) -> None:
     wanted = _SUPPORT_OF_SCALE.get(prior.scale, "real")
     if prior.components[0].support != wanted:
-        raise InputError(f"a prior on the {prior.scale} scale needs a {wanted}-valued "
-                         f"family, got {prior.components[0].family}", field="family")
+        raise InputError(
+            f"a prior on the {prior.scale} scale needs a {wanted}-valued "
+            f"family, got {prior.components[0].family}",
+            field="family",
+        )
 
 
 def _moment(prior: Prior, model: DataModel) -> tuple[float, dict[str, Any]]:
     m, v = prior.mean(), prior.var()
     if not math.isfinite(v):
-        raise NumericalError("the prior has no finite variance (a Student-t with df <= 2?), "
-                             "so moment matching is undefined; use method='elir'")
+        raise NumericalError(
+            "the prior has no finite variance (a Student-t with df <= 2?), "
+            "so moment matching is undefined; use method='elir'"
+        )
     if model.scale == "probability":
         value = m * (1.0 - m) / v - 1.0
         return value, {"matched": "beta", "a": m * value, "b": (1.0 - m) * value}
     if model.scale == "rate":
         return m / v, {"matched": "gamma", "a": m * m / v, "rate": m / v}
     unit_var = 1.0 / float(model.information(m))
-    return unit_var / v, {"matched": "normal", "unit_variance": unit_var,
-                          "unit_variance_at": "prior mean" if model.likelihood != "normal"
-                          else "fixed"}
+    return unit_var / v, {
+        "matched": "normal",
+        "unit_variance": unit_var,
+        "unit_variance_at": "prior mean" if model.likelihood != "normal" else "fixed",
+    }
 
 
 def _morita(prior: Prior, model: DataModel) -> tuple[float, dict[str, Any]]:
     x_bar = prior.mean()
     if not math.isfinite(x_bar):
-        raise NumericalError("the prior has no finite mean (a Student-t with df <= 1?), so "
-                             "the method of Morita et al. has no point to work at; use "
-                             "method='elir'")
+        raise NumericalError(
+            "the prior has no finite mean (a Student-t with df <= 1?), so "
+            "the method of Morita et al. has no point to work at; use "
+            "method='elir'"
+        )
     d_p = _curvature_on_scale(prior, x_bar)
     d_0 = _vague_limit_curvature(prior.components[0].support, x_bar)
     value = (d_p - d_0) / float(model.information(x_bar))
     details: dict[str, Any] = {"at": "prior mean", "x": x_bar, "prior_information": d_p}
     if value < 0:
-        details["note"] = ("the prior's log density is less curved at its mean than the "
-                           "epsilon-information prior's; the method's minimiser is m = 0")
+        details["note"] = (
+            "the prior's log density is less curved at its mean than the "
+            "epsilon-information prior's; the method's minimiser is m = 0"
+        )
         value = 0.0
     return value, details
 
@@ -312,7 +351,8 @@ def _elir(prior: Prior, model: DataModel) -> tuple[float, dict[str, Any]]:
         raise NumericalError(
             "the expected local information ratio diverges for a Student-t prior under a "
             f"{model.likelihood} likelihood (its tails outweigh the vanishing unit "
-            "information); use method='moment' or approximate the prior by normals")
+            "information); use method='moment' or approximate the prior by normals"
+        )
     components = prior.components
 
     def ratio(phi: np.ndarray) -> np.ndarray:
@@ -330,38 +370,61 @@ def _elir(prior: Prior, model: DataModel) -> tuple[float, dict[str, Any]]:
         # where the other components' mass lies, in this component's quantiles: the
         # curvature of the mixture changes fast there
         # (break points very near 0 or 1 would only make slivers)
-        breaks = sorted(u for u in {float(dist.cdf(o.frozen().ppf(q))) for o in components
-                                    if o is not c for q in (1e-3, 0.5, 1 - 1e-3)}
-                        if 1e-6 < u < 1 - 1e-6)
+        breaks = sorted(
+            u
+            for u in {
+                float(dist.cdf(o.frozen().ppf(q)))
+                for o in components
+                if o is not c
+                for q in (1e-3, 0.5, 1 - 1e-3)
+            }
+            if 1e-6 < u < 1 - 1e-6
+        )
         with warnings.catch_warnings():
             # quad's own warnings are replaced by the error check below
             warnings.simplefilter("ignore", integrate.IntegrationWarning)
-            value, abserr = integrate.quad(integrand, 0.0, 1.0, points=breaks or None,
-                                           limit=500, epsabs=1e-9, epsrel=1e-8)
+            value, abserr = integrate.quad(
+                integrand, 0.0, 1.0, points=breaks or None, limit=500, epsabs=1e-9, epsrel=1e-8
+            )
         total += c.weight * value
         err += c.weight * abserr
     if not math.isfinite(total) or err > 1e-4 * max(1.0, abs(total)):
-        raise NumericalError(f"the quadrature for the expected local information ratio did "
-                             f"not settle (estimate {total:.6g}, error {err:.2g}); try "
-                             "method='moment' or a mixture with fewer, wider components")
-    parameter = {"normal": "value on the analysis scale", "binomial": "logit p",
-                 "poisson": "log rate"}[model.likelihood]
+        raise NumericalError(
+            f"the quadrature for the expected local information ratio did "
+            f"not settle (estimate {total:.6g}, error {err:.2g}); try "
+            "method='moment' or a mixture with fewer, wider components"
+        )
+    parameter = {
+        "normal": "value on the analysis scale",
+        "binomial": "logit p",
+        "poisson": "log rate",
+    }[model.likelihood]
     return total, {"parameter": parameter, "quadrature_error": err}
 
 
 _METHOD_FUNCTIONS: dict[str, Callable[[Prior, DataModel], tuple[float, dict[str, Any]]]] = {
-    "moment": _moment, "morita": _morita, "elir": _elir}
+    "moment": _moment,
+    "morita": _morita,
+    "elir": _elir,
+}
 
 
-def ess(prior: Prior, *, method: str, unit_sd: float | None = None,
-        likelihood: str | None = None, unit: str | None = None) -> EssResult:
+def ess(
+    prior: Prior,
+    *,
+    method: str,
+    unit_sd: float | None = None,
+    likelihood: str | None = None,
+    unit: str | None = None,
+) -> EssResult:
     """The effective sample size of `prior` by one method (see the module docstring).
 
     `unit_sd`, `likelihood` and `unit` define one unit of data, as in `data_model`.
     """
     if method not in METHODS:
-        raise InputError(f"method must be one of {', '.join(METHODS)}, got {method!r}",
-                         field="method")
+        raise InputError(
+            f"method must be one of {', '.join(METHODS)}, got {method!r}", field="method"
+        )
     model = data_model(prior.scale, unit_sd=unit_sd, likelihood=likelihood, unit=unit)
     _check_support(prior)
     value, details = _METHOD_FUNCTIONS[method](prior, model)
@@ -369,8 +432,12 @@ def ess(prior: Prior, *, method: str, unit_sd: float | None = None,
     return EssResult(float(value), method, model.unit, details)
 
 
-def ess_all(prior: Prior, unit_sd: float | None = None, unit: str | None = None,
-            likelihood: str | None = None) -> dict[str, Any]:
+def ess_all(
+    prior: Prior,
+    unit_sd: float | None = None,
+    unit: str | None = None,
+    likelihood: str | None = None,
+) -> dict[str, Any]:
     """Every method's ESS with the unit: {"unit", "likelihood", "unit_sd", "moment",
     "morita", "elir", "notes"}.
 
@@ -378,13 +445,21 @@ def ess_all(prior: Prior, unit_sd: float | None = None, unit: str | None = None,
     "notes"; a method whose value carries a caveat has the caveat there too.
     """
     model = data_model(prior.scale, unit_sd=unit_sd, likelihood=likelihood, unit=unit)
-    out: dict[str, Any] = {"unit": model.unit, "likelihood": model.likelihood,
-                           "unit_sd": model.unit_sd}
+    out: dict[str, Any] = {
+        "unit": model.unit,
+        "likelihood": model.likelihood,
+        "unit_sd": model.unit_sd,
+    }
     notes: dict[str, str] = {}
     for method in METHODS:
         try:
-            result = ess(prior, method=method, unit_sd=model.unit_sd,
-                         likelihood=model.likelihood, unit=model.unit)
+            result = ess(
+                prior,
+                method=method,
+                unit_sd=model.unit_sd,
+                likelihood=model.likelihood,
+                unit=model.unit,
+            )
         except NumericalError as exc:
             out[method] = None
             notes[method] = str(exc)
@@ -396,8 +471,9 @@ def ess_all(prior: Prior, unit_sd: float | None = None, unit: str | None = None,
     return out
 
 
-def solve_power_for_cap(ess_of_power: Callable[[float], float], cap: float, *,
-                        tol: float = 0.005) -> float:
+def solve_power_for_cap(
+    ess_of_power: Callable[[float], float], cap: float, *, tol: float = 0.005
+) -> float:
     """The global power weight a in (0, 1] whose prior has ESS equal to `cap`.
 
     ESS is taken to increase with a (a power weight scales information). Returns 1.0 when
@@ -413,20 +489,27 @@ def solve_power_for_cap(ess_of_power: Callable[[float], float], cap: float, *,
         return 1.0
     # bracket by decades, so that extreme weights are only tried when needed
     high = 1.0
-    for low in (10.0 ** -k for k in range(1, 11)):
+    for low in (10.0**-k for k in range(1, 11)):
         if ess_of_power(low) <= cap:
             break
         high = low
     else:
-        raise NumericalError(f"even a global power weight of {low:g} leaves the ESS above "
-                             f"the cap {cap:g}; check the cap and its unit")
-    a = float(optimize.brentq(lambda w: ess_of_power(w) / cap - 1.0, low, high,
-                              xtol=1e-14, rtol=1e-12, maxiter=200))
+        raise NumericalError(
+            f"even a global power weight of {low:g} leaves the ESS above "
+            f"the cap {cap:g}; check the cap and its unit"
+        )
+    a = float(
+        optimize.brentq(
+            lambda w: ess_of_power(w) / cap - 1.0, low, high, xtol=1e-14, rtol=1e-12, maxiter=200
+        )
+    )
     reached = ess_of_power(a)
     if abs(reached / cap - 1.0) > tol:
-        raise NumericalError(f"the ESS at power weight {a:.6g} is {reached:.6g}, not within "
-                             f"{tol:.1%} of the cap {cap:g}; the ESS may not rise smoothly "
-                             "with the weight: try another ESS method")
+        raise NumericalError(
+            f"the ESS at power weight {a:.6g} is {reached:.6g}, not within "
+            f"{tol:.1%} of the cap {cap:g}; the ESS may not rise smoothly "
+            "with the weight: try another ESS method"
+        )
     return a
 
 
@@ -443,8 +526,7 @@ def information_shares(contributions: Iterable[float]) -> tuple[float, ...]:
         raise InputError("no contributions to share", field="entries")
     for i, v in enumerate(values):
         if not (math.isfinite(v) and v >= 0):
-            raise InputError(f"contribution {i} must be finite and >= 0, got {v}",
-                             field="entries")
+            raise InputError(f"contribution {i} must be finite and >= 0, got {v}", field="entries")
     total = math.fsum(values)
     if total <= 0:
         raise InputError("the contributions sum to zero", field="entries")

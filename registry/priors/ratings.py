@@ -36,8 +36,15 @@ from typing import Any
 
 from registry.errors import InputError
 
-DOMAINS = ("population", "intervention", "comparator", "outcome", "setting", "design",
-           "risk_of_bias")
+DOMAINS = (
+    "population",
+    "intervention",
+    "comparator",
+    "outcome",
+    "setting",
+    "design",
+    "risk_of_bias",
+)
 INDIRECTNESS_LEVELS = ("direct", "minor", "serious", "very_serious")
 BIAS_LEVELS = ("low", "some", "high")
 MECHANISMS = ("power", "bias", "both")
@@ -46,8 +53,9 @@ MECHANISMS = ("power", "bias", "both")
 def levels_for(domain: str) -> tuple[str, ...]:
     """The levels of a domain, best first."""
     if domain not in DOMAINS:
-        raise InputError(f"unknown rating domain {domain!r}; one of {', '.join(DOMAINS)}",
-                         field="domain")
+        raise InputError(
+            f"unknown rating domain {domain!r}; one of {', '.join(DOMAINS)}", field="domain"
+        )
     return BIAS_LEVELS if domain == "risk_of_bias" else INDIRECTNESS_LEVELS
 
 
@@ -67,15 +75,23 @@ class Rating:
     def __post_init__(self) -> None:
         levels = levels_for(self.domain)
         if self.level not in levels:
-            raise InputError(f"{self.domain} level must be one of {', '.join(levels)}, "
-                             f"got {self.level!r}", field=self.domain)
+            raise InputError(
+                f"{self.domain} level must be one of {', '.join(levels)}, got {self.level!r}",
+                field=self.domain,
+            )
         if self.level != levels[0] and not self.rationale.strip():
-            raise InputError(f"a {self.domain} rating of {self.level!r} needs a written "
-                             "rationale", field=self.domain)
+            raise InputError(
+                f"a {self.domain} rating of {self.level!r} needs a written rationale",
+                field=self.domain,
+            )
 
     def to_dict(self) -> dict[str, str]:
-        return {"domain": self.domain, "level": self.level, "rationale": self.rationale,
-                "rule": self.rule}
+        return {
+            "domain": self.domain,
+            "level": self.level,
+            "rationale": self.rationale,
+            "rule": self.rule,
+        }
 
 
 @dataclass(frozen=True)
@@ -95,14 +111,18 @@ class LevelDiscount:
 
 def _check_level(domain: str, level: str, d: LevelDiscount) -> None:
     if not (math.isfinite(d.power) and 0 < d.power <= 1):
-        raise InputError(f"{domain} {level}: the power factor must be in (0, 1], got "
-                         f"{d.power}", field=domain)
+        raise InputError(
+            f"{domain} {level}: the power factor must be in (0, 1], got {d.power}", field=domain
+        )
     if not (math.isfinite(d.bias_var) and d.bias_var >= 0):
-        raise InputError(f"{domain} {level}: the bias variance must be finite and >= 0, "
-                         f"got {d.bias_var}", field=domain)
+        raise InputError(
+            f"{domain} {level}: the bias variance must be finite and >= 0, got {d.bias_var}",
+            field=domain,
+        )
     if not math.isfinite(d.shift):
-        raise InputError(f"{domain} {level}: the bias shift must be finite, got {d.shift}",
-                         field=domain)
+        raise InputError(
+            f"{domain} {level}: the bias shift must be finite, got {d.shift}", field=domain
+        )
 
 
 @dataclass(frozen=True)
@@ -120,25 +140,31 @@ class DiscountMapping:
     def __post_init__(self) -> None:
         unknown = set(self.levels) - set(DOMAINS)
         if unknown:
-            raise InputError(f"unknown rating domain {sorted(unknown)[0]!r}; one of "
-                             f"{', '.join(DOMAINS)}", field=sorted(unknown)[0])
+            raise InputError(
+                f"unknown rating domain {sorted(unknown)[0]!r}; one of {', '.join(DOMAINS)}",
+                field=sorted(unknown)[0],
+            )
         canonical: dict[str, dict[str, LevelDiscount]] = {}
         for domain in DOMAINS:
             given = self.levels.get(domain)
             names = levels_for(domain)
             if given is None or set(given) != set(names):
-                raise InputError(f"the mapping for {domain} must give exactly the levels "
-                                 f"{', '.join(names)}", field=domain)
+                raise InputError(
+                    f"the mapping for {domain} must give exactly the levels {', '.join(names)}",
+                    field=domain,
+                )
             previous: LevelDiscount | None = None
             for level in names:
                 d = given[level]
                 _check_level(domain, level, d)
-                if previous is not None and (d.power > previous.power
-                                             or d.bias_var < previous.bias_var):
+                if previous is not None and (
+                    d.power > previous.power or d.bias_var < previous.bias_var
+                ):
                     raise InputError(
                         f"{domain}: level {level!r} must discount at least as much as the "
                         "level above it (power factor no larger, bias variance no smaller)",
-                        field=domain)
+                        field=domain,
+                    )
                 previous = d
             canonical[domain] = {level: given[level] for level in names}
         object.__setattr__(self, "levels", canonical)
@@ -147,12 +173,15 @@ class DiscountMapping:
         return self.levels[domain][level]
 
     def to_dict(self) -> dict[str, dict[str, dict[str, float]]]:
-        return {domain: {level: d.to_dict() for level, d in by_level.items()}
-                for domain, by_level in self.levels.items()}
+        return {
+            domain: {level: d.to_dict() for level, d in by_level.items()}
+            for domain, by_level in self.levels.items()
+        }
 
     @classmethod
-    def from_dict(cls, doc: Mapping[str, Any],
-                  base: DiscountMapping | None = None) -> DiscountMapping:
+    def from_dict(
+        cls, doc: Mapping[str, Any], base: DiscountMapping | None = None
+    ) -> DiscountMapping:
         """A mapping from a definition file, over `base` (default `DEFAULT_MAPPING`).
 
         `doc` is {domain: {level: {"power": .., "bias_sd": .. or "bias_var": .., "shift":
@@ -162,24 +191,30 @@ class DiscountMapping:
         merged = {domain: dict(by_level) for domain, by_level in base.levels.items()}
         for domain, by_level in doc.items():
             if domain not in merged:
-                raise InputError(f"unknown rating domain {domain!r}; one of "
-                                 f"{', '.join(DOMAINS)}", field=domain)
+                raise InputError(
+                    f"unknown rating domain {domain!r}; one of {', '.join(DOMAINS)}", field=domain
+                )
             for level, spec in by_level.items():
                 if level not in merged[domain]:
-                    raise InputError(f"{domain} level must be one of "
-                                     f"{', '.join(levels_for(domain))}, got {level!r}",
-                                     field=domain)
-                merged[domain][level] = _level_from_dict(domain, level, spec,
-                                                         merged[domain][level])
+                    raise InputError(
+                        f"{domain} level must be one of "
+                        f"{', '.join(levels_for(domain))}, got {level!r}",
+                        field=domain,
+                    )
+                merged[domain][level] = _level_from_dict(domain, level, spec, merged[domain][level])
         return cls(merged)
 
 
-def _level_from_dict(domain: str, level: str, spec: Mapping[str, Any],
-                     old: LevelDiscount) -> LevelDiscount:
+def _level_from_dict(
+    domain: str, level: str, spec: Mapping[str, Any], old: LevelDiscount
+) -> LevelDiscount:
     unknown = set(spec) - {"power", "bias_sd", "bias_var", "shift"}
     if unknown:
-        raise InputError(f"{domain} {level}: unknown key {sorted(unknown)[0]!r}; use power, "
-                         "bias_sd or bias_var, shift", field=domain)
+        raise InputError(
+            f"{domain} {level}: unknown key {sorted(unknown)[0]!r}; use power, "
+            "bias_sd or bias_var, shift",
+            field=domain,
+        )
     if "bias_sd" in spec and "bias_var" in spec:
         raise InputError(f"{domain} {level}: give bias_sd or bias_var, not both", field=domain)
     try:
@@ -188,27 +223,31 @@ def _level_from_dict(domain: str, level: str, spec: Mapping[str, Any],
         power = float(spec.get("power", old.power))
         shift = float(spec.get("shift", old.shift))
     except (TypeError, ValueError) as exc:
-        raise InputError(f"{domain} {level}: every value must be a number ({exc})",
-                         field=domain) from exc
+        raise InputError(
+            f"{domain} {level}: every value must be a number ({exc})", field=domain
+        ) from exc
     if bias_sd is not None:
         if bias_sd < 0:
-            raise InputError(f"{domain} {level}: bias_sd must be >= 0, got {bias_sd}",
-                             field=domain)
+            raise InputError(f"{domain} {level}: bias_sd must be >= 0, got {bias_sd}", field=domain)
         bias_var = bias_sd * bias_sd
     return LevelDiscount(power=power, bias_var=float(bias_var), shift=shift)
 
 
-def _ladder(powers: tuple[float, ...], bias_sds: tuple[float, ...],
-            names: tuple[str, ...]) -> dict[str, LevelDiscount]:
-    return {name: LevelDiscount(power=p, bias_var=sd * sd)
-            for name, p, sd in zip(names, powers, bias_sds, strict=True)}
+def _ladder(
+    powers: tuple[float, ...], bias_sds: tuple[float, ...], names: tuple[str, ...]
+) -> dict[str, LevelDiscount]:
+    return {
+        name: LevelDiscount(power=p, bias_var=sd * sd)
+        for name, p, sd in zip(names, powers, bias_sds, strict=True)
+    }
 
 
 _INDIRECT = _ladder((1.0, 0.9, 0.6, 0.3), (0.0, 0.05, 0.15, 0.3), INDIRECTNESS_LEVELS)
 _BIAS = _ladder((1.0, 0.8, 0.5), (0.0, 0.1, 0.25), BIAS_LEVELS)
 
 DEFAULT_MAPPING = DiscountMapping(
-    {domain: (_BIAS if domain == "risk_of_bias" else _INDIRECT) for domain in DOMAINS})
+    {domain: (_BIAS if domain == "risk_of_bias" else _INDIRECT) for domain in DOMAINS}
+)
 """The shipped default: a convention chosen by priorledger, to be reviewed, not a fact.
 
 Indirectness domains, per level direct / minor / serious / very_serious:
@@ -234,15 +273,17 @@ class Discount:
     bias_var: float = 0.0
 
     def __post_init__(self) -> None:
-        _check_level("discount", "combined", LevelDiscount(self.power, self.bias_var,
-                                                           self.bias_shift))
+        _check_level(
+            "discount", "combined", LevelDiscount(self.power, self.bias_var, self.bias_shift)
+        )
 
     def to_dict(self) -> dict[str, float]:
         return {"power": self.power, "bias_shift": self.bias_shift, "bias_var": self.bias_var}
 
 
-def discount_for(ratings: Iterable[Rating], mapping: DiscountMapping = DEFAULT_MAPPING,
-                 mechanism: str = "both") -> Discount:
+def discount_for(
+    ratings: Iterable[Rating], mapping: DiscountMapping = DEFAULT_MAPPING, mechanism: str = "both"
+) -> Discount:
     """Combine an entry's ratings into one discount.
 
     Every domain must be rated exactly once (an unrated domain is an error, not an
@@ -251,8 +292,10 @@ def discount_for(ratings: Iterable[Rating], mapping: DiscountMapping = DEFAULT_M
     power part ("power"), the bias part ("bias") or both ("both").
     """
     if mechanism not in MECHANISMS:
-        raise InputError(f"mechanism must be one of {', '.join(MECHANISMS)}, got "
-                         f"{mechanism!r}", field="mechanism")
+        raise InputError(
+            f"mechanism must be one of {', '.join(MECHANISMS)}, got {mechanism!r}",
+            field="mechanism",
+        )
     by_domain: dict[str, Rating] = {}
     for rating in ratings:
         if rating.domain in by_domain:

@@ -25,8 +25,9 @@ from registry.priors.ess import data_model
 from registry.priors.value import Component
 
 
-def _components(components: Iterable[Component], family: str | None = None
-                ) -> tuple[Component, ...]:
+def _components(
+    components: Iterable[Component], family: str | None = None
+) -> tuple[Component, ...]:
     out = tuple(components)
     if not out:
         raise InputError("a prior needs at least one component", field="components")
@@ -36,13 +37,16 @@ def _components(components: Iterable[Component], family: str | None = None
     if family is not None:
         for c in out:
             if c.family != family:
-                raise InputError(f"this update is conjugate for {family} components only, "
-                                 f"got {c.family}", field="family")
+                raise InputError(
+                    f"this update is conjugate for {family} components only, got {c.family}",
+                    field="family",
+                )
     return out
 
 
-def robustify(components: Iterable[Component], vague: Component,
-              weight: float) -> tuple[Component, ...]:
+def with_vague_component(
+    components: Iterable[Component], vague: Component, weight: float
+) -> tuple[Component, ...]:
     """(1 - w) x informative mixture + w x vague (Schmidli et al. 2014).
 
     `weight` is the vague component's prior weight w in [0, 1); w = 0 returns the
@@ -52,16 +56,27 @@ def robustify(components: Iterable[Component], vague: Component,
     if not (math.isfinite(weight) and 0 <= weight < 1):
         raise InputError(f"the vague weight must be in [0, 1), got {weight}", field="weight")
     if vague.support != informative[0].support:
-        raise InputError(f"the vague component ({vague.family}) must share the support of "
-                         f"the informative prior ({informative[0].family})", field="vague")
+        raise InputError(
+            f"the vague component ({vague.family}) must share the support of "
+            f"the informative prior ({informative[0].family})",
+            field="vague",
+        )
     if weight == 0:
         return informative
-    return (*(Component(c.family, c.params, (1.0 - weight) * c.weight) for c in informative),
-            Component(vague.family, vague.params, weight))
+    return (
+        *(Component(c.family, c.params, (1.0 - weight) * c.weight) for c in informative),
+        Component(vague.family, vague.params, weight),
+    )
 
 
-def unit_information_component(prior_mean: float, unit_sd: float | None, family: str,
-                               scale: str, *, likelihood: str | None = None) -> Component:
+def unit_information_component(
+    prior_mean: float,
+    unit_sd: float | None,
+    family: str,
+    scale: str,
+    *,
+    likelihood: str | None = None,
+) -> Component:
     """The default vague component: a prior worth one unit of data, at `prior_mean`.
 
     - normal on an analysis scale: normal(mean, s_u), with s_u = 1/sqrt(i_F(mean)) for one
@@ -82,22 +97,35 @@ def unit_information_component(prior_mean: float, unit_sd: float | None, family:
         return Component("normal", {"loc": prior_mean, "scale": sd})
     if family == "beta":
         if scale != "probability" or not 0 < prior_mean < 1:
-            raise InputError("a beta unit-information component needs the probability scale "
-                             f"and a mean in (0, 1); got {scale}, {prior_mean}", field="mean")
+            raise InputError(
+                "a beta unit-information component needs the probability scale "
+                f"and a mean in (0, 1); got {scale}, {prior_mean}",
+                field="mean",
+            )
         return Component("beta", {"a": prior_mean, "b": 1.0 - prior_mean})
     if family == "gamma":
         if scale != "rate" or prior_mean <= 0:
-            raise InputError("a gamma unit-information component needs the rate scale and a "
-                             f"positive mean; got {scale}, {prior_mean}", field="mean")
+            raise InputError(
+                "a gamma unit-information component needs the rate scale and a "
+                f"positive mean; got {scale}, {prior_mean}",
+                field="mean",
+            )
         return Component("gamma", {"a": prior_mean, "scale": 1.0})
-    raise InputError(f"no unit-information component for family {family!r}; use normal, "
-                     "beta or gamma", field="family")
+    raise InputError(
+        f"no unit-information component for family {family!r}; use normal, beta or gamma",
+        field="family",
+    )
 
 
-def _reweighted(components: Sequence[Component], updated: Sequence[dict[str, float]],
-                log_marginals: Sequence[float], family: str) -> tuple[Component, ...]:
-    log_w = np.array([math.log(c.weight) + lm
-                      for c, lm in zip(components, log_marginals, strict=True)])
+def _reweighted(
+    components: Sequence[Component],
+    updated: Sequence[dict[str, float]],
+    log_marginals: Sequence[float],
+    family: str,
+) -> tuple[Component, ...]:
+    log_w = np.array(
+        [math.log(c.weight) + lm for c, lm in zip(components, log_marginals, strict=True)]
+    )
     weights = np.exp(log_w - special.logsumexp(log_w))
     # a component whose posterior weight underflows to zero carries no posterior mass
     keep = [j for j, w in enumerate(weights) if w > 0]
@@ -105,8 +133,7 @@ def _reweighted(components: Sequence[Component], updated: Sequence[dict[str, flo
     return tuple(Component(family, updated[j], float(weights[j]) / total) for j in keep)
 
 
-def update_normal(components: Iterable[Component], y: float,
-                  se: float) -> tuple[Component, ...]:
+def update_normal(components: Iterable[Component], y: float, se: float) -> tuple[Component, ...]:
     """Posterior of a normal mixture after y ~ N(theta, se^2).
 
     Component j, N(m_j, s_j^2), becomes N((m_j/s_j^2 + y/se^2) / P_j, 1/P_j) with
@@ -119,14 +146,14 @@ def update_normal(components: Iterable[Component], y: float,
     for c in comps:
         m, s = c.params["loc"], c.params["scale"]
         precision = 1.0 / s**2 + 1.0 / se**2
-        updated.append({"loc": (m / s**2 + y / se**2) / precision,
-                        "scale": 1.0 / math.sqrt(precision)})
+        updated.append(
+            {"loc": (m / s**2 + y / se**2) / precision, "scale": 1.0 / math.sqrt(precision)}
+        )
         log_marg.append(float(stats.norm.logpdf(y, m, math.sqrt(s**2 + se**2))))
     return _reweighted(comps, updated, log_marg, "normal")
 
 
-def update_beta(components: Iterable[Component], events: float,
-                n: float) -> tuple[Component, ...]:
+def update_beta(components: Iterable[Component], events: float, n: float) -> tuple[Component, ...]:
     """Posterior of a beta mixture after `events` of `n` (binomial).
 
     Beta(a_j, b_j) becomes Beta(a_j + x, b_j + n - x); its weight is proportional to
@@ -135,8 +162,7 @@ def update_beta(components: Iterable[Component], events: float,
     """
     comps = _components(components, "beta")
     if not (math.isfinite(n) and n > 0 and 0 <= events <= n):
-        raise InputError(f"need 0 <= events <= n and n > 0, got {events} of {n}",
-                         field="events")
+        raise InputError(f"need 0 <= events <= n and n > 0, got {events} of {n}", field="events")
     updated, log_marg = [], []
     for c in comps:
         a, b = c.params["a"], c.params["b"]
@@ -145,8 +171,9 @@ def update_beta(components: Iterable[Component], events: float,
     return _reweighted(comps, updated, log_marg, "beta")
 
 
-def update_gamma(components: Iterable[Component], events: float,
-                 exposure: float) -> tuple[Component, ...]:
+def update_gamma(
+    components: Iterable[Component], events: float, exposure: float
+) -> tuple[Component, ...]:
     """Posterior of a gamma mixture after `events` in `exposure` (Poisson, rate per unit).
 
     Gamma(shape a_j, rate b_j) becomes Gamma(a_j + x, b_j + E); its weight is proportional
@@ -154,14 +181,20 @@ def update_gamma(components: Iterable[Component], events: float,
     marginal without the factor E^x / x!.
     """
     comps = _components(components, "gamma")
-    if not (math.isfinite(exposure) and exposure > 0 and math.isfinite(events)
-            and events >= 0):
-        raise InputError(f"need events >= 0 and exposure > 0, got {events} in {exposure}",
-                         field="events")
+    if not (math.isfinite(exposure) and exposure > 0 and math.isfinite(events) and events >= 0):
+        raise InputError(
+            f"need events >= 0 and exposure > 0, got {events} in {exposure}", field="events"
+        )
     updated, log_marg = [], []
     for c in comps:
         a, rate = c.params["a"], 1.0 / c.params["scale"]
         updated.append({"a": a + events, "scale": 1.0 / (rate + exposure)})
-        log_marg.append(float(special.gammaln(a + events) - special.gammaln(a)
-                              + a * math.log(rate) - (a + events) * math.log(rate + exposure)))
+        log_marg.append(
+            float(
+                special.gammaln(a + events)
+                - special.gammaln(a)
+                + a * math.log(rate)
+                - (a + events) * math.log(rate + exposure)
+            )
+        )
     return _reweighted(comps, updated, log_marg, "gamma")

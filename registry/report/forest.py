@@ -54,20 +54,28 @@ def forest_plot(
     path = Path(path)
     fmt = path.suffix.lower().lstrip(".")
     if fmt not in FORMATS:
-        raise InputError(f"the figure's file name must end in .{', .'.join(FORMATS)}; got "
-                         f"{path.name!r}", field="path")
+        raise InputError(
+            f"the figure's file name must end in .{', .'.join(FORMATS)}; got {path.name!r}",
+            field="path",
+        )
     if scale not in scales.SCALES:
-        raise InputError(f"scale must be one of {', '.join(scales.SCALES)}; got {scale!r}",
-                         field="scale")
+        raise InputError(
+            f"scale must be one of {', '.join(scales.SCALES)}; got {scale!r}", field="scale"
+        )
     k = len(y)
     if not (len(labels) == len(se) == k) or k == 0:
-        raise InputError(f"labels, y and se must be non-empty and of one length; got "
-                         f"{len(labels)}, {k} and {len(se)}", field="labels")
+        raise InputError(
+            f"labels, y and se must be non-empty and of one length; got "
+            f"{len(labels)}, {k} and {len(se)}",
+            field="labels",
+        )
     if weights is None:
         weights = getattr(result, "weights", None)
     if weights is not None and len(weights) != k:
-        raise InputError(f"weights must have one value per study; got {len(weights)} for "
-                         f"{k} studies", field="weights")
+        raise InputError(
+            f"weights must have one value per study; got {len(weights)} for {k} studies",
+            field="weights",
+        )
 
     def show(x: float) -> float:
         return scales.to_natural(scale, x) if natural else x
@@ -90,8 +98,12 @@ def forest_plot(
     head = ("Study", f"Estimate [{100 * level:g}% CI]")
     method = result.method + (", HKSJ" if getattr(result, "hksj", False) else "")
     pooled = (f"Pooled ({method})", summary(lo, mu, hi))
-    predicted = ("Prediction interval", "not available" if result.prediction is None
-                 else summary(result.prediction[0], None, result.prediction[1]))
+    predicted = (
+        "Prediction interval",
+        "not available"
+        if result.prediction is None
+        else summary(result.prediction[0], None, result.prediction[1]),
+    )
     left_texts = [head[0], pooled[0], predicted[0], *map(str, labels)]
     right_texts = [head[1], pooled[1], predicted[1], *(summary(*i) for i in intervals)]
 
@@ -103,9 +115,16 @@ def forest_plot(
     height = 1.6 + 0.32 * (k + 3)
     fig = Figure(figsize=(width, height))
     FigureCanvasAgg(fig)
-    grid = fig.add_gridspec(1, 3, width_ratios=(label_in, plot_in, text_in), wspace=0.0,
-                            left=0.2 / width, right=1 - 0.2 / width,
-                            top=1 - (0.55 if title else 0.15) / height, bottom=1.0 / height)
+    grid = fig.add_gridspec(
+        1,
+        3,
+        width_ratios=(label_in, plot_in, text_in),
+        wspace=0.0,
+        left=0.2 / width,
+        right=1 - 0.2 / width,
+        top=1 - (0.55 if title else 0.15) / height,
+        bottom=1.0 / height,
+    )
     ax_label, ax, ax_text = (fig.add_subplot(grid[0, i]) for i in range(3))
     # Rows from the top: the header, one per study, then the diamond and prediction interval.
     top, pooled_row, prediction_row = k + 2.0, 1.0, 0.3
@@ -131,19 +150,33 @@ def forest_plot(
     biggest = max(size)
     for row, label, (s_lo, est, s_hi), w in zip(rows, labels, intervals, size, strict=True):
         ax.plot([s_lo, s_hi], [row, row], color="0.25", lw=1.2, solid_capstyle="butt")
-        ax.scatter([est], [row], marker="s", s=12 + 160 * w / biggest, color="tab:blue",
-                   zorder=3, edgecolor="none")
+        ax.scatter(
+            [est],
+            [row],
+            marker="s",
+            s=12 + 160 * w / biggest,
+            color="tab:blue",
+            zorder=3,
+            edgecolor="none",
+        )
         ax_label.text(0, row, str(label), va="center")
         ax_text.text(0.02, row, summary(s_lo, est, s_hi), **mono)
         if weights is not None:
             ax_text.text(0.98, row, f"{w:.1f}%", ha="right", **mono)
 
-    ax.add_patch(Polygon([(lo, pooled_row), (mu, pooled_row + 0.32), (hi, pooled_row),
-                          (mu, pooled_row - 0.32)], closed=True, color="tab:red", zorder=3))
+    ax.add_patch(
+        Polygon(
+            [(lo, pooled_row), (mu, pooled_row + 0.32), (hi, pooled_row), (mu, pooled_row - 0.32)],
+            closed=True,
+            color="tab:red",
+            zorder=3,
+        )
+    )
     ax.axhline(1.6, color="0.7", lw=0.8)
     if result.prediction is not None:
-        ax.plot(result.prediction, [prediction_row] * 2, color="tab:red", lw=2.5,
-                solid_capstyle="butt")
+        ax.plot(
+            result.prediction, [prediction_row] * 2, color="tab:red", lw=2.5, solid_capstyle="butt"
+        )
         ax.plot(result.prediction, [prediction_row] * 2, "|", color="tab:red", ms=9)
 
     if no_effect_line and scale in _NO_EFFECT:
@@ -163,8 +196,9 @@ def forest_plot(
     note = f"analysis scale: {scale}"
     if natural and scale != "identity":
         note += f"; shown as {scales.NATURAL_NAME[scale]}"
-    fig.text(1 - 0.2 / width, 0.3 / height, note, fontsize=9, color="0.2", ha="right",
-             style="italic")
+    fig.text(
+        1 - 0.2 / width, 0.3 / height, note, fontsize=9, color="0.2", ha="right", style="italic"
+    )
     if title:
         fig.suptitle(title, weight="bold", y=1 - 0.2 / height)
     fig.savefig(path, format=fmt, dpi=150)
@@ -202,15 +236,37 @@ def _label_axis(ax: Any, scale: str, natural: bool) -> None:
             positions.append(at)
     ax.xaxis.set_major_locator(FixedLocator(positions))
     ax.xaxis.set_major_formatter(
-        FuncFormatter(lambda x, _pos: f"{scales.to_natural(scale, x):.3g}"))
+        FuncFormatter(lambda x, _pos: f"{scales.to_natural(scale, x):.3g}")
+    )
     ax.set_xlim(lo, hi)
     ax.set_xlabel(scales.NATURAL_NAME[scale].capitalize())
 
 
 # Round probabilities for a logit axis, dense near 0 and 1 where the logit stretches; the
 # coarse set is used when the fine one would crowd the axis.
-_PROBABILITIES = (0.001, 0.002, 0.005, 0.01, 0.02, 0.05, 0.1, 0.2, 0.3, 0.4, 0.5, 0.6, 0.7,
-                  0.8, 0.9, 0.95, 0.98, 0.99, 0.995, 0.998, 0.999)
+_PROBABILITIES = (
+    0.001,
+    0.002,
+    0.005,
+    0.01,
+    0.02,
+    0.05,
+    0.1,
+    0.2,
+    0.3,
+    0.4,
+    0.5,
+    0.6,
+    0.7,
+    0.8,
+    0.9,
+    0.95,
+    0.98,
+    0.99,
+    0.995,
+    0.998,
+    0.999,
+)
 _COARSE_PROBABILITIES = (0.001, 0.01, 0.1, 0.5, 0.9, 0.99, 0.999)
 
 

@@ -103,17 +103,22 @@ class TauPrior:
     def __post_init__(self) -> None:
         arity = {"half-normal": 1, "half-t": 2, "log-normal": 2}
         if self.family not in arity:
-            raise InputError(f"unknown tau prior {self.family!r}; use {_TAU_FORMS}",
-                             field="tau_prior")
+            raise InputError(
+                f"unknown tau prior {self.family!r}; use {_TAU_FORMS}", field="tau_prior"
+            )
         params = tuple(float(p) for p in self.params)
         if len(params) != arity[self.family] or not all(map(math.isfinite, params)):
-            raise InputError(f"{self.family} takes {arity[self.family]} finite number(s); "
-                             f"use {_TAU_FORMS}", field="tau_prior")
+            raise InputError(
+                f"{self.family} takes {arity[self.family]} finite number(s); use {_TAU_FORMS}",
+                field="tau_prior",
+            )
         positive = params if self.family != "log-normal" else params[1:]
         if any(p <= 0 for p in positive):
-            raise InputError(f"the scale, df and sigma of a tau prior must be positive, got "
-                             f"{self.describe_params(params)}; use {_TAU_FORMS}",
-                             field="tau_prior")
+            raise InputError(
+                f"the scale, df and sigma of a tau prior must be positive, got "
+                f"{self.describe_params(params)}; use {_TAU_FORMS}",
+                field="tau_prior",
+            )
         object.__setattr__(self, "params", params)
 
     @classmethod
@@ -121,13 +126,14 @@ class TauPrior:
         """Read 'half-normal:0.5', 'half-t:0.5,3' (scale, df) or 'log-normal:-2,1.5'."""
         family, sep, rest = str(text).strip().partition(":")
         if not sep:
-            raise InputError(f"cannot read tau prior {text!r}; use {_TAU_FORMS}",
-                             field="tau_prior")
+            raise InputError(f"cannot read tau prior {text!r}; use {_TAU_FORMS}", field="tau_prior")
         try:
             params = tuple(float(p) for p in rest.split(","))
         except ValueError:
-            raise InputError(f"cannot read the numbers in tau prior {text!r}; use {_TAU_FORMS}",
-                             field="tau_prior") from None
+            raise InputError(
+                f"cannot read the numbers in tau prior {text!r}; use {_TAU_FORMS}",
+                field="tau_prior",
+            ) from None
         return cls(family.strip().lower(), params)
 
     @staticmethod
@@ -162,8 +168,11 @@ class TauPrior:
         s = self.params[0]
         # below s e^-C the mass is ~ e^-C (density bounded at 0); above, the tails decay like
         # exp(-tau²/2s²) or (tau/s)^-df.
-        upper = math.log(math.sqrt(2 * _CUTOFF)) if self.family == "half-normal" \
+        upper = (
+            math.log(math.sqrt(2 * _CUTOFF))
+            if self.family == "half-normal"
             else _CUTOFF / self.params[1] + 1.0
+        )
         return math.log(s) - _CUTOFF, math.log(s) + upper
 
 
@@ -180,11 +189,16 @@ class MuPrior:
     def __post_init__(self) -> None:
         params = tuple(float(p) for p in self.params)
         ok = (self.family == "flat" and not params) or (
-            self.family == "normal" and len(params) == 2 and all(map(math.isfinite, params))
-            and params[1] > 0)
+            self.family == "normal"
+            and len(params) == 2
+            and all(map(math.isfinite, params))
+            and params[1] > 0
+        )
         if not ok:
-            raise InputError(f"bad mu prior {self.family}:{params}; use {_MU_FORMS} with SD > 0",
-                             field="mu_prior")
+            raise InputError(
+                f"bad mu prior {self.family}:{params}; use {_MU_FORMS} with SD > 0",
+                field="mu_prior",
+            )
         object.__setattr__(self, "params", params)
 
     @classmethod
@@ -197,13 +211,15 @@ class MuPrior:
         try:
             params = tuple(float(p) for p in rest.split(",")) if rest.strip() else ()
         except ValueError:
-            raise InputError(f"cannot read mu prior {text!r}; use {_MU_FORMS}",
-                             field="mu_prior") from None
+            raise InputError(
+                f"cannot read mu prior {text!r}; use {_MU_FORMS}", field="mu_prior"
+            ) from None
         return cls(family, params)
 
     def describe(self) -> str:
-        return "flat" if self.family == "flat" else "normal:" + ",".join(
-            f"{p:g}" for p in self.params)
+        return (
+            "flat" if self.family == "flat" else "normal:" + ",".join(f"{p:g}" for p in self.params)
+        )
 
     def logpdf(self, mu: Any) -> Any:
         if self.family == "flat":
@@ -226,7 +242,8 @@ class _KernelSum:
 
     def __init__(self, loc: Any, weight: Any, width: Any, smooth: Any) -> None:
         loc, weight, width, smooth = np.broadcast_arrays(
-            *(np.asarray(a, dtype=float).ravel() for a in (loc, weight, width, smooth)))
+            *(np.asarray(a, dtype=float).ravel() for a in (loc, weight, width, smooth))
+        )
         order = np.argsort(weight)
         dropped = np.cumsum(weight[order]) < _PRUNE * weight.sum()
         keep = np.sort(order[~dropped])
@@ -245,8 +262,9 @@ class _KernelSum:
         coeff[0] = weight[sharp]
         for n in range(1, _DECONV_TERMS + 1):
             coeff[n] = coeff[n - 1] * (-g) / n
-        keys, inverse = np.unique(np.stack([loc[sharp], smooth[sharp]]), axis=1,
-                                  return_inverse=True)
+        keys, inverse = np.unique(
+            np.stack([loc[sharp], smooth[sharp]]), axis=1, return_inverse=True
+        )
         merged = np.zeros((_DECONV_TERMS + 1, keys.shape[1]))
         for n in range(_DECONV_TERMS + 1):
             merged[n] = np.bincount(inverse.ravel(), weights=coeff[n], minlength=keys.shape[1])
@@ -267,7 +285,7 @@ class _KernelSum:
         size = max(1, self.loc.size + (2 * _DECONV_TERMS + 2) * self.sharp_loc.size)
         step = max(1, _CHUNK // size)
         for start in range(0, x.size, step):
-            xs = x[start:start + step, None]
+            xs = x[start : start + step, None]
             part = slice(start, start + step)
             if self.loc.size:
                 z = (xs - self.loc) / self.smooth
@@ -289,11 +307,11 @@ class _KernelSum:
                         even += self.coeff[m // 2 - 1] * h
                     h_prev, h = h, z * h - m * h_prev
                 if want_cdf:
-                    cdf[part] += (special.ndtr(z) @ self.sharp_weight
-                                  - (phi * odd).sum(axis=1))
+                    cdf[part] += special.ndtr(z) @ self.sharp_weight - (phi * odd).sum(axis=1)
                 if want_pdf:
                     pdf[part] += ((phi / self.sharp_smooth) * (self.sharp_weight + even)).sum(
-                        axis=1)
+                        axis=1
+                    )
         return cdf, pdf
 
     def cdf(self, x: Any) -> np.ndarray:
@@ -323,8 +341,9 @@ class _KernelSum:
             x = new
             if done.all():
                 return x
-        raise NumericalError("the quantiles of a posterior did not converge; try refine=2 or a "
-                             "tighter tau prior")
+        raise NumericalError(
+            "the quantiles of a posterior did not converge; try refine=2 or a tighter tau prior"
+        )
 
 
 # --------------------------------------------------------------------------------------
@@ -356,8 +375,7 @@ class Predictive:
         return self._dist.ppf(levels)
 
     def to_dict(self, include_grid: bool = False) -> dict[str, Any]:
-        out: dict[str, Any] = {"mean": self.mean, "sd": self.sd,
-                               "quantiles": dict(self.quantiles)}
+        out: dict[str, Any] = {"mean": self.mean, "sd": self.sd, "quantiles": dict(self.quantiles)}
         if include_grid:
             out["x"] = [float(v) for v in self.x]
             out["density"] = [float(v) for v in self.density]
@@ -425,8 +443,10 @@ class BayesResult:
 def _array(name: str, values: Any, k: int | None = None) -> np.ndarray:
     arr = np.asarray(values, dtype=float).ravel()
     if arr.size == 0 or (k is not None and arr.size != k):
-        raise InputError(f"{name} needs {k if k is not None else 'at least one'} value(s), "
-                         f"got {arr.size}", field=name)
+        raise InputError(
+            f"{name} needs {k if k is not None else 'at least one'} value(s), got {arr.size}",
+            field=name,
+        )
     if not np.all(np.isfinite(arr)):
         raise InputError(f"{name} must be finite numbers", field=name)
     return arr
@@ -456,8 +476,7 @@ def _discount(k: int, power: Any, bias_shift: Any, bias_var: Any) -> _Discount:
     return _Discount(a, b, v, tuple(notes))
 
 
-def _priors(tau_prior: TauPrior | str, mu_prior: MuPrior | str | None) -> tuple[TauPrior,
-                                                                                    MuPrior]:
+def _priors(tau_prior: TauPrior | str, mu_prior: MuPrior | str | None) -> tuple[TauPrior, MuPrior]:
     tp = tau_prior if isinstance(tau_prior, TauPrior) else TauPrior.parse(tau_prior)
     if mu_prior is None:
         mp = MuPrior()
@@ -476,8 +495,9 @@ def _check_refine(refine: float) -> float:
 # the log-tau grid
 
 
-def _locate(log_post: Callable[[np.ndarray], np.ndarray], lo: float, hi: float,
-            cutoff: float) -> tuple[float, float, float]:
+def _locate(
+    log_post: Callable[[np.ndarray], np.ndarray], lo: float, hi: float, cutoff: float
+) -> tuple[float, float, float]:
     """Zoom in on the region of u = log tau where log_post > max - cutoff.
 
     Returns (lo, hi, sd) of that region and the posterior sd of u there. Extends the search
@@ -487,8 +507,9 @@ def _locate(log_post: Callable[[np.ndarray], np.ndarray], lo: float, hi: float,
         u = np.linspace(lo, hi, 161)
         lp = log_post(u)
         if not np.isfinite(lp.max()):
-            raise NumericalError("the posterior of tau vanishes everywhere; check the data, or "
-                                 "try a wider tau prior")
+            raise NumericalError(
+                "the posterior of tau vanishes everywhere; check the data, or try a wider tau prior"
+            )
         keep = np.flatnonzero(lp > lp.max() - cutoff)
         if keep[0] == 0 and lo > -700:
             lo -= 0.5 * (hi - lo) + 5
@@ -499,13 +520,15 @@ def _locate(log_post: Callable[[np.ndarray], np.ndarray], lo: float, hi: float,
         a, b = keep[0] - 1, keep[-1] + 1
         lo, hi = float(u[a]), float(u[b])
         if b - a >= 60:
-            w = np.exp(lp[a:b + 1] - lp.max())
-            uu = u[a:b + 1]
+            w = np.exp(lp[a : b + 1] - lp.max())
+            uu = u[a : b + 1]
             mean = float(w @ uu / w.sum())
             sd = math.sqrt(float(w @ (uu - mean) ** 2 / w.sum()))
             return lo, hi, sd
-    raise NumericalError("could not locate the posterior of tau; try a tau prior with a "
-                         "scale nearer the spread of the estimates")
+    raise NumericalError(
+        "could not locate the posterior of tau; try a tau prior with a "
+        "scale nearer the spread of the estimates"
+    )
 
 
 def _log_tau_nodes(lo: float, hi: float, sd: float, refine: float) -> tuple[np.ndarray, float]:
@@ -518,8 +541,9 @@ def _log_tau_nodes(lo: float, hi: float, sd: float, refine: float) -> tuple[np.n
 # normal model
 
 
-def _normal_conditional(y: np.ndarray, var: np.ndarray, tau2: np.ndarray,
-                        mu_prior: MuPrior) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+def _normal_conditional(
+    y: np.ndarray, var: np.ndarray, tau2: np.ndarray, mu_prior: MuPrior
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """log p(y | tau) + const, and mu | tau, y ~ N(m, 1/W), for each tau² (closed form)."""
     v = var[None, :] + tau2[:, None]
     w = 1.0 / v
@@ -538,12 +562,10 @@ def _normal_conditional(y: np.ndarray, var: np.ndarray, tau2: np.ndarray,
     return log_marg, m, 1.0 / big_w
 
 
-def _tau_search_range(tau_prior: TauPrior, y: np.ndarray, var: np.ndarray) -> tuple[float,
-                                                                                      float]:
+def _tau_search_range(tau_prior: TauPrior, y: np.ndarray, var: np.ndarray) -> tuple[float, float]:
     lo, hi = tau_prior.log_tau_range()
     spread = float(np.ptp(y) + math.sqrt(var.max()))
-    return (min(lo, math.log(math.sqrt(var.min())) - _CUTOFF),
-            max(hi, math.log(spread) + 5.0))
+    return (min(lo, math.log(math.sqrt(var.min())) - _CUTOFF), max(hi, math.log(spread) + 5.0))
 
 
 @dataclass(frozen=True)
@@ -560,13 +582,17 @@ def _tau_summary(u: np.ndarray, weight: np.ndarray, step: float) -> _KernelSum:
     return _KernelSum(u, weight, np.zeros(u.size), np.full(u.size, 1.5 * step))
 
 
-def _integrate_normal(y: np.ndarray, var: np.ndarray, tau_prior: TauPrior, mu_prior: MuPrior,
-                      refine: float) -> _Posterior:
+def _integrate_normal(
+    y: np.ndarray, var: np.ndarray, tau_prior: TauPrior, mu_prior: MuPrior, refine: float
+) -> _Posterior:
     cutoff = _CUTOFF + 8 * math.log2(refine)
 
     def log_post(u: np.ndarray) -> np.ndarray:
-        return (_normal_conditional(y, var, np.exp(2 * u), mu_prior)[0]
-                + tau_prior.logpdf(np.exp(u)) + u)
+        return (
+            _normal_conditional(y, var, np.exp(2 * u), mu_prior)[0]
+            + tau_prior.logpdf(np.exp(u))
+            + u
+        )
 
     lo, hi, sd = _locate(log_post, *_tau_search_range(tau_prior, y, var), cutoff)
     u, step = _log_tau_nodes(lo, hi, sd, refine)
@@ -613,8 +639,10 @@ class _CountLikelihood:
     def derivatives(self, theta: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         if self.kind == "binomial":
             p = special.expit(theta)
-            return (self.power * (self.events - self.size * p),
-                    -self.power * self.size * p * (1 - p))
+            return (
+                self.power * (self.events - self.size * p),
+                -self.power * self.size * p * (1 - p),
+            )
         rate = self.size * np.exp(theta)
         return self.power * (self.events - rate), -self.power * rate
 
@@ -645,8 +673,9 @@ def _quadrature_groups(lik: _CountLikelihood, d: _Discount, refine: float) -> li
     """Split the studies by Gauss-Hermite order: the further a study's likelihood is from
     normal (fewer events, or fewer non-events), the more nodes (orders chosen by measuring
     the error against 80-node rules over tau up to 5)."""
-    information = lik.events if lik.kind == "poisson" else np.minimum(
-        lik.events, lik.size - lik.events)
+    information = (
+        lik.events if lik.kind == "poisson" else np.minimum(lik.events, lik.size - lik.events)
+    )
     order = np.select([information >= 50, information >= 10], [8, 12], _GH_NODES)
     y0, se0 = lik.normal_approx()
     groups = []
@@ -654,8 +683,17 @@ def _quadrature_groups(lik: _CountLikelihood, d: _Discount, refine: float) -> li
         idx = np.flatnonzero(order == q)
         nodes, weights = np.polynomial.hermite.hermgauss(round(q * refine))
         part = _CountLikelihood(lik.kind, lik.events[idx], lik.size[idx], lik.power[idx])
-        groups.append(_StudyGroup(part, d.shift[idx], d.var[idx], nodes, weights, y0[idx],
-                                  d.power[idx] / se0[idx] ** 2))
+        groups.append(
+            _StudyGroup(
+                part,
+                d.shift[idx],
+                d.var[idx],
+                nodes,
+                weights,
+                y0[idx],
+                d.power[idx] / se0[idx] ** 2,
+            )
+        )
     return groups
 
 
@@ -681,8 +719,11 @@ def _latent_log_marginal(group: _StudyGroup, centre: np.ndarray, var: np.ndarray
     h = lik.derivatives(theta)[1] - prec
     sigma = 1.0 / np.sqrt(-h)
     pts = theta[..., None] + math.sqrt(2.0) * sigma[..., None] * nodes
-    f = (lik.loglik(pts) - 0.5 * (pts - centre[..., None]) ** 2 * prec[..., None]
-         - 0.5 * np.log(2 * math.pi * var[..., None]))
+    f = (
+        lik.loglik(pts)
+        - 0.5 * (pts - centre[..., None]) ** 2 * prec[..., None]
+        - 0.5 * np.log(2 * math.pi * var[..., None])
+    )
     f += nodes**2 + np.log(weights)
     top = f.max(axis=-1)
     return np.log(math.sqrt(2.0) * sigma) + top + np.log(np.exp(f - top[..., None]).sum(axis=-1))
@@ -699,9 +740,17 @@ class _MuGrid:
     row: np.ndarray
 
 
-def _count_mu_grid(lik: _CountLikelihood, d: _Discount, tau_prior: TauPrior, mu_prior: MuPrior,
-                   u: np.ndarray, centre: np.ndarray, sd: np.ndarray, refine: float,
-                   cutoff: float) -> _MuGrid:
+def _count_mu_grid(
+    lik: _CountLikelihood,
+    d: _Discount,
+    tau_prior: TauPrior,
+    mu_prior: MuPrior,
+    u: np.ndarray,
+    centre: np.ndarray,
+    sd: np.ndarray,
+    refine: float,
+    cutoff: float,
+) -> _MuGrid:
     """Evaluate the exact log posterior on a mu grid per tau node.
 
     A row's grid starts as centre +- 1.25 sqrt(2 cutoff) sd (sd of the normal approximation)
@@ -739,10 +788,13 @@ def _count_mu_grid(lik: _CountLikelihood, d: _Discount, tau_prior: TauPrior, mu_
                 grid = step[rows, None] * (first_index[rows, None] + np.arange(n))
                 lp = mu_prior.logpdf(grid) + log_prior_u[rows, None]
                 for group in groups:
-                    var = np.broadcast_to((tau[rows, None] ** 2 + group.var)[:, None, :],
-                                          (*grid.shape, group.var.size))
-                    lp = lp + _latent_log_marginal(group, grid[..., None] + group.shift,
-                                                   var).sum(axis=-1)
+                    var = np.broadcast_to(
+                        (tau[rows, None] ** 2 + group.var)[:, None, :],
+                        (*grid.shape, group.var.size),
+                    )
+                    lp = lp + _latent_log_marginal(group, grid[..., None] + group.shift, var).sum(
+                        axis=-1
+                    )
                 for j, r in enumerate(rows):
                     grids[r], lps[r] = grid[j], lp[j]
         bad = []
@@ -761,11 +813,19 @@ def _count_mu_grid(lik: _CountLikelihood, d: _Discount, tau_prior: TauPrior, mu_
             if touching:
                 # walk the window towards the mass, at the same spacing
                 span = grid[-1] - grid[0]
-                lay(r, grid[first] - (0.5 * span if first == 0 else 2 * step[r]),
-                    grid[last] + (0.5 * span if last == grid.size - 1 else 2 * step[r]), step[r])
+                lay(
+                    r,
+                    grid[first] - (0.5 * span if first == 0 else 2 * step[r]),
+                    grid[last] + (0.5 * span if last == grid.size - 1 else 2 * step[r]),
+                    step[r],
+                )
             else:
-                lay(r, grid[first] - 2 * step[r], grid[last] + 2 * step[r],
-                    _SPACING * cond_sd / refine)
+                lay(
+                    r,
+                    grid[first] - 2 * step[r],
+                    grid[last] + 2 * step[r],
+                    _SPACING * cond_sd / refine,
+                )
         if not bad:
             return _MuGrid(
                 mu=np.concatenate(grids),
@@ -774,20 +834,26 @@ def _count_mu_grid(lik: _CountLikelihood, d: _Discount, tau_prior: TauPrior, mu_
                 row=np.repeat(np.arange(u.size), count),
             )
         todo = np.asarray(bad)
-    raise NumericalError("the conditional posterior of mu could not be resolved; try a normal "
-                         "mu prior, a tighter tau prior or refine=2")
+    raise NumericalError(
+        "the conditional posterior of mu could not be resolved; try a normal "
+        "mu prior, a tighter tau prior or refine=2"
+    )
 
 
-def _integrate_counts(lik: _CountLikelihood, d: _Discount, tau_prior: TauPrior,
-                      mu_prior: MuPrior, refine: float) -> _Posterior:
+def _integrate_counts(
+    lik: _CountLikelihood, d: _Discount, tau_prior: TauPrior, mu_prior: MuPrior, refine: float
+) -> _Posterior:
     cutoff = _CUTOFF + 8 * math.log2(refine)
     y0, se0 = lik.normal_approx()
     var0 = se0**2 / d.power + d.var
     y0 = y0 - d.shift
 
     def approx_log_post(uu: np.ndarray) -> np.ndarray:
-        return (_normal_conditional(y0, var0, np.exp(2 * uu), mu_prior)[0]
-                + tau_prior.logpdf(np.exp(uu)) + uu)
+        return (
+            _normal_conditional(y0, var0, np.exp(2 * uu), mu_prior)[0]
+            + tau_prior.logpdf(np.exp(uu))
+            + uu
+        )
 
     lo, hi, sd_u = _locate(approx_log_post, *_tau_search_range(tau_prior, y0, var0), cutoff)
     # the normal approximation only places the grid; the exact posterior decides its extent
@@ -812,8 +878,10 @@ def _integrate_counts(lik: _CountLikelihood, d: _Discount, tau_prior: TauPrior,
         hi = u[inside[-1]] + (0.5 * width if grow_hi else step)
         sd_u = exact_sd
     else:
-        raise NumericalError("the posterior of tau could not be resolved; try refine=2 or a "
-                             "tau prior on the scale of the data")
+        raise NumericalError(
+            "the posterior of tau could not be resolved; try refine=2 or a "
+            "tau prior on the scale of the data"
+        )
     w = np.exp(grid.lp - grid.lp.max()) * grid.step
     w /= w.sum()
     tau = np.exp(u)
@@ -832,9 +900,18 @@ def _integrate_counts(lik: _CountLikelihood, d: _Discount, tau_prior: TauPrior,
 # assembling the result
 
 
-def _result(post: _Posterior, *, k: int, likelihood: str, scale: str, y_approx: np.ndarray,
-            se_approx: np.ndarray, tau_prior: TauPrior, mu_prior: MuPrior,
-            notes: Sequence[str]) -> BayesResult:
+def _result(
+    post: _Posterior,
+    *,
+    k: int,
+    likelihood: str,
+    scale: str,
+    y_approx: np.ndarray,
+    se_approx: np.ndarray,
+    tau_prior: TauPrior,
+    mu_prior: MuPrior,
+    notes: Sequence[str],
+) -> BayesResult:
     tail = (1 - CREDIBLE_LEVEL) / 2
     mu_lo, mu_hi = post.mu.ppf([tail, 1 - tail])
     u_q = post.u.ppf([tail, 0.5, 1 - tail])
@@ -873,9 +950,18 @@ def _result(post: _Posterior, *, k: int, likelihood: str, scale: str, y_approx: 
     )
 
 
-def fit_normal(y: Any, se: Any, tau_prior: TauPrior | str, mu_prior: MuPrior | str | None = None,
-               *, power: Any = None, bias_shift: Any = None, bias_var: Any = None,
-               scale: str = "identity", refine: float = 1.0) -> BayesResult:
+def fit_normal(
+    y: Any,
+    se: Any,
+    tau_prior: TauPrior | str,
+    mu_prior: MuPrior | str | None = None,
+    *,
+    power: Any = None,
+    bias_shift: Any = None,
+    bias_var: Any = None,
+    scale: str = "identity",
+    refine: float = 1.0,
+) -> BayesResult:
     """Normal-normal hierarchical model for estimates y_i with known standard errors se_i.
 
     Marginally y_i | mu, tau ~ N(mu + b_i, se_i²/a_i + tau² + v_i): a power a_i multiplies the
@@ -891,13 +977,31 @@ def fit_normal(y: Any, se: Any, tau_prior: TauPrior | str, mu_prior: MuPrior | s
     tp, mp = _priors(tau_prior, mu_prior)
     d = _discount(y.size, power, bias_shift, bias_var)
     post = _integrate_normal(y - d.shift, se**2 / d.power + d.var, tp, mp, _check_refine(refine))
-    return _result(post, k=y.size, likelihood="normal", scale=scale, y_approx=y, se_approx=se,
-                   tau_prior=tp, mu_prior=mp, notes=d.notes)
+    return _result(
+        post,
+        k=y.size,
+        likelihood="normal",
+        scale=scale,
+        y_approx=y,
+        se_approx=se,
+        tau_prior=tp,
+        mu_prior=mp,
+        notes=d.notes,
+    )
 
 
-def _fit_counts(kind: str, events: Any, size: Any, size_name: str, tau_prior: TauPrior | str,
-                mu_prior: MuPrior | str | None, power: Any, bias_shift: Any, bias_var: Any,
-                refine: float) -> BayesResult:
+def _fit_counts(
+    kind: str,
+    events: Any,
+    size: Any,
+    size_name: str,
+    tau_prior: TauPrior | str,
+    mu_prior: MuPrior | str | None,
+    power: Any,
+    bias_shift: Any,
+    bias_var: Any,
+    refine: float,
+) -> BayesResult:
     y = _array("events", events)
     n = _array(size_name, size, y.size)
     if np.any(y < 0) or np.any(y != np.round(y)):
@@ -913,39 +1017,84 @@ def _fit_counts(kind: str, events: Any, size: Any, size_name: str, tau_prior: Ta
         interior = (y > 0) & (y < n) if kind == "binomial" else y > 0
         both_ends = kind == "binomial" and np.any(y == 0) and np.any(y == n)
         if not (interior.any() or both_ends):
-            raise InputError("with these counts a flat mu prior gives an improper posterior; "
-                             "give a normal mu prior such as normal:0,10", field="mu_prior")
+            raise InputError(
+                "with these counts a flat mu prior gives an improper posterior; "
+                "give a normal mu prior such as normal:0,10",
+                field="mu_prior",
+            )
     d = _discount(y.size, power, bias_shift, bias_var)
     lik = _CountLikelihood(kind, y, n, d.power)
     post = _integrate_counts(lik, d, tp, mp, _check_refine(refine))
     y_approx, se_approx = lik.normal_approx()
-    return _result(post, k=y.size, likelihood=kind, scale="logit" if kind == "binomial" else "log",
-                   y_approx=y_approx, se_approx=se_approx, tau_prior=tp, mu_prior=mp,
-                   notes=d.notes)
+    return _result(
+        post,
+        k=y.size,
+        likelihood=kind,
+        scale="logit" if kind == "binomial" else "log",
+        y_approx=y_approx,
+        se_approx=se_approx,
+        tau_prior=tp,
+        mu_prior=mp,
+        notes=d.notes,
+    )
 
 
-def fit_binomial(events: Any, totals: Any, tau_prior: TauPrior | str,
-                 mu_prior: MuPrior | str | None = None, *, power: Any = None,
-                 bias_shift: Any = None, bias_var: Any = None,
-                 refine: float = 1.0) -> BayesResult:
+def fit_binomial(
+    events: Any,
+    totals: Any,
+    tau_prior: TauPrior | str,
+    mu_prior: MuPrior | str | None = None,
+    *,
+    power: Any = None,
+    bias_shift: Any = None,
+    bias_var: Any = None,
+    refine: float = 1.0,
+) -> BayesResult:
     """Binomial-logit hierarchical model for single-arm proportions events_i / totals_i.
 
     y_i ~ Bin(n_i, expit(theta_i)), theta_i ~ N(mu + b_i, tau² + v_i); the likelihood is exact
     (each theta_i integrated by adaptive Gauss-Hermite), raised to a_i when `power` is given.
     Results are on the logit scale.
     """
-    return _fit_counts("binomial", events, totals, "totals", tau_prior, mu_prior, power,
-                       bias_shift, bias_var, refine)
+    return _fit_counts(
+        "binomial",
+        events,
+        totals,
+        "totals",
+        tau_prior,
+        mu_prior,
+        power,
+        bias_shift,
+        bias_var,
+        refine,
+    )
 
 
-def fit_poisson(events: Any, exposures: Any, tau_prior: TauPrior | str,
-                mu_prior: MuPrior | str | None = None, *, power: Any = None,
-                bias_shift: Any = None, bias_var: Any = None,
-                refine: float = 1.0) -> BayesResult:
+def fit_poisson(
+    events: Any,
+    exposures: Any,
+    tau_prior: TauPrior | str,
+    mu_prior: MuPrior | str | None = None,
+    *,
+    power: Any = None,
+    bias_shift: Any = None,
+    bias_var: Any = None,
+    refine: float = 1.0,
+) -> BayesResult:
     """Poisson-log hierarchical model for event counts y_i over exposures E_i.
 
     y_i ~ Poisson(E_i exp(theta_i)), theta_i ~ N(mu + b_i, tau² + v_i); the likelihood is
     exact, raised to a_i when `power` is given. Results are on the log-rate scale.
     """
-    return _fit_counts("poisson", events, exposures, "exposures", tau_prior, mu_prior, power,
-                       bias_shift, bias_var, refine)
+    return _fit_counts(
+        "poisson",
+        events,
+        exposures,
+        "exposures",
+        tau_prior,
+        mu_prior,
+        power,
+        bias_shift,
+        bias_var,
+        refine,
+    )

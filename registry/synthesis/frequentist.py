@@ -126,12 +126,16 @@ def pool(
     tau2: float | None
     if method == "common":
         tau2 = None
-        notes.append("The common-effect model assumes no between-study variance; tau² is not "
-                     "estimated and there is no prediction interval.")
+        notes.append(
+            "The common-effect model assumes no between-study variance; tau² is not "
+            "estimated and there is no prediction interval."
+        )
     elif k == 1:
         tau2 = None
-        notes.append("With k = 1 there is no between-study variance to estimate; the result is "
-                     "the single study's estimate and interval.")
+        notes.append(
+            "With k = 1 there is no between-study variance to estimate; the result is "
+            "the single study's estimate and interval."
+        )
     else:
         tau2 = _TAU2_ESTIMATORS[method](y_arr, v)
 
@@ -144,11 +148,14 @@ def pool(
         se_mu = math.sqrt(float(np.sum(w * (y_arr - mu) ** 2)) / ((k - 1) * float(np.sum(w))))
         crit = float(stats.t.ppf(tail, k - 1))
         if se_mu == 0.0:
-            notes.append("The Hartung-Knapp standard error is zero because every study has the "
-                         "same estimate, so the interval for mu has no width.")
+            notes.append(
+                "The Hartung-Knapp standard error is zero because every study has the "
+                "same estimate, so the interval for mu has no width."
+            )
     elif hksj:
-        notes.append("The Hartung-Knapp interval needs k >= 2; the normal (Wald) interval is "
-                     "shown instead.")
+        notes.append(
+            "The Hartung-Knapp interval needs k >= 2; the normal (Wald) interval is shown instead."
+        )
     ci = (mu - crit * se_mu, mu + crit * se_mu)
 
     prediction: tuple[float, float] | None = None
@@ -156,14 +163,18 @@ def pool(
         half = float(stats.t.ppf(tail, k - 2)) * math.sqrt(tau2 + se_mu**2)
         prediction = (mu - half, mu + half)
     elif tau2 is not None:
-        notes.append("A prediction interval needs k >= 3 (it uses t with k - 2 degrees of "
-                     "freedom); none is given for k = 2.")
+        notes.append(
+            "A prediction interval needs k >= 3 (it uses t with k - 2 degrees of "
+            "freedom); none is given for k = 2."
+        )
 
     tau2_ci = _q_profile(y_arr, v, level) if tau2 is not None else None
     if tau2_ci == (0.0, 0.0):
-        notes.append("Q at tau² = 0 is below the lower chi² quantile, so the Q-profile "
-                     "interval for tau² collapses to [0, 0]; the data are more homogeneous "
-                     "than their standard errors suggest.")
+        notes.append(
+            "Q at tau² = 0 is below the lower chi² quantile, so the Q-profile "
+            "interval for tau² collapses to [0, 0]; the data are more homogeneous "
+            "than their standard errors suggest."
+        )
 
     return PoolResult(
         k=k,
@@ -191,11 +202,13 @@ def _validated(
 ) -> tuple[np.ndarray, np.ndarray]:
     """Check the inputs once; return y and the within-study variances v = se²."""
     if method not in METHODS:
-        raise InputError(f"method must be one of {', '.join(METHODS)}; got {method!r}",
-                         field="method")
+        raise InputError(
+            f"method must be one of {', '.join(METHODS)}; got {method!r}", field="method"
+        )
     if not (isinstance(level, int | float) and 0.0 < level < 1.0):
-        raise InputError(f"level must be a number strictly between 0 and 1; got {level!r}",
-                         field="level")
+        raise InputError(
+            f"level must be a number strictly between 0 and 1; got {level!r}", field="level"
+        )
     try:
         y_arr = np.asarray(y, dtype=float)
         se_arr = np.asarray(se, dtype=float)
@@ -204,18 +217,25 @@ def _validated(
     if y_arr.ndim != 1 or se_arr.ndim != 1:
         raise InputError("y and se must be one-dimensional sequences", field="y")
     if len(y_arr) != len(se_arr):
-        raise InputError(f"y and se must have the same length; got {len(y_arr)} estimates and "
-                         f"{len(se_arr)} standard errors", field="se")
+        raise InputError(
+            f"y and se must have the same length; got {len(y_arr)} estimates and "
+            f"{len(se_arr)} standard errors",
+            field="se",
+        )
     if len(y_arr) == 0:
         raise InputError("there is nothing to pool: k = 0 estimates", field="y")
     bad_y = np.flatnonzero(~np.isfinite(y_arr))
     if bad_y.size:
-        raise InputError(f"every estimate must be finite; study {bad_y[0] + 1} has "
-                         f"{y_arr[bad_y[0]]}", field="y")
+        raise InputError(
+            f"every estimate must be finite; study {bad_y[0] + 1} has {y_arr[bad_y[0]]}", field="y"
+        )
     bad_se = np.flatnonzero(~(np.isfinite(se_arr) & (se_arr > 0)))
     if bad_se.size:
-        raise InputError(f"every standard error must be finite and positive; study "
-                         f"{bad_se[0] + 1} has {se_arr[bad_se[0]]}", field="se")
+        raise InputError(
+            f"every standard error must be finite and positive; study "
+            f"{bad_se[0] + 1} has {se_arr[bad_se[0]]}",
+            field="se",
+        )
     return y_arr, se_arr**2
 
 
@@ -237,8 +257,16 @@ def _solve_q_gen(target: float, y: np.ndarray, v: np.ndarray) -> float:
     upper = max(float(np.var(y)), float(np.max(v)))
     for _ in range(_MAX_BRACKET_EXPANSIONS):
         if _q_gen(upper, y, v) < target:
-            return float(optimize.brentq(lambda t: _q_gen(t, y, v) - target, 0.0, upper,
-                                         xtol=1e-14, rtol=1e-14, maxiter=500))
+            return float(
+                optimize.brentq(
+                    lambda t: _q_gen(t, y, v) - target,
+                    0.0,
+                    upper,
+                    xtol=1e-14,
+                    rtol=1e-14,
+                    maxiter=500,
+                )
+            )
         upper *= 4.0
     raise NumericalError(
         f"could not bracket tau² with Q_gen(tau²) = {target:.6g} (upper end reached "

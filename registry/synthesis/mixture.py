@@ -123,8 +123,9 @@ def _beta_mle(s1: float, s2: float, start: np.ndarray) -> np.ndarray:
         total = special.digamma(a + b)
         g = np.array([special.digamma(a) - total - s1, special.digamma(b) - total - s2])
         tri = special.polygamma(1, a + b)
-        jac = np.array([[special.polygamma(1, a) - tri, -tri],
-                        [-tri, special.polygamma(1, b) - tri]])
+        jac = np.array(
+            [[special.polygamma(1, a) - tri, -tri], [-tri, special.polygamma(1, b) - tri]]
+        )
         step = np.linalg.solve(jac, g)
         scale = 1.0
         while np.any(ab - scale * step <= 0):
@@ -150,8 +151,7 @@ def _initial(family: str, t: np.ndarray, w: np.ndarray, j: int) -> np.ndarray:
     return np.column_stack([centres * size, (1 - centres) * size])
 
 
-def _em(family: str, t: np.ndarray, w: np.ndarray, j: int) -> tuple[np.ndarray, np.ndarray,
-                                                                   float]:
+def _em(family: str, t: np.ndarray, w: np.ndarray, j: int) -> tuple[np.ndarray, np.ndarray, float]:
     params = _initial(family, t, w, j)
     log_pi = np.full(j, -math.log(j))
     last = -np.inf
@@ -174,17 +174,26 @@ def _grid_quantiles(x: np.ndarray, density: np.ndarray, levels: np.ndarray) -> n
     return np.interp(levels, cdf / cdf[-1], x)
 
 
-def _mixture_quantiles(components: tuple[Component, ...], family: str,
-                       levels: np.ndarray) -> np.ndarray:
+def _mixture_quantiles(
+    components: tuple[Component, ...], family: str, levels: np.ndarray
+) -> np.ndarray:
     """Mixture quantiles on the analysis scale (by root finding on the natural scale)."""
     frozen = [(c.weight, c.frozen()) for c in components]
     out = []
     for q in levels:
         lo = min(f.ppf(q) for _, f in frozen)
         hi = max(f.ppf(q) for _, f in frozen)
-        value = lo if lo == hi else optimize.brentq(
-            lambda v, q=q: sum(wt * f.cdf(v) for wt, f in frozen) - q, lo, hi, xtol=1e-14,
-            rtol=1e-12)
+        value = (
+            lo
+            if lo == hi
+            else optimize.brentq(
+                lambda v, q=q: sum(wt * f.cdf(v) for wt, f in frozen) - q,
+                lo,
+                hi,
+                xtol=1e-14,
+                rtol=1e-12,
+            )
+        )
         out.append(value)
     t = np.asarray(out)
     if family == "beta":
@@ -192,8 +201,15 @@ def _mixture_quantiles(components: tuple[Component, ...], family: str,
     return np.log(t) if family == "gamma" else t
 
 
-def fit_mixture(x: Any, density: Any, family: str = "normal", *, max_components: int = 4,
-                criterion: str = "bic", sample_size: float = 1000.0) -> MixtureFit:
+def fit_mixture(
+    x: Any,
+    density: Any,
+    family: str = "normal",
+    *,
+    max_components: int = 4,
+    criterion: str = "bic",
+    sample_size: float = 1000.0,
+) -> MixtureFit:
     """Fit a mixture of `family` components to a density tabulated on the analysis scale.
 
     x must be increasing and evenly or unevenly spaced; density >= 0 on it (any scale factor).
@@ -202,14 +218,22 @@ def fit_mixture(x: Any, density: Any, family: str = "normal", *, max_components:
     x = np.asarray(x, dtype=float).ravel()
     f = np.asarray(density, dtype=float).ravel()
     if family not in FAMILIES:
-        raise InputError(f"unknown mixture family {family!r}; one of {', '.join(FAMILIES)}",
-                         field="family")
+        raise InputError(
+            f"unknown mixture family {family!r}; one of {', '.join(FAMILIES)}", field="family"
+        )
     if criterion not in ("bic", "aic"):
         raise InputError("criterion must be bic or aic", field="criterion")
-    if x.size < 10 or x.size != f.size or np.any(np.diff(x) <= 0) or np.any(f < 0) \
-            or not (np.all(np.isfinite(x)) and np.all(np.isfinite(f))) or f.sum() <= 0:
-        raise InputError("need at least 10 increasing grid points with a finite density >= 0",
-                         field="density")
+    if (
+        x.size < 10
+        or x.size != f.size
+        or np.any(np.diff(x) <= 0)
+        or np.any(f < 0)
+        or not (np.all(np.isfinite(x)) and np.all(np.isfinite(f)))
+        or f.sum() <= 0
+    ):
+        raise InputError(
+            "need at least 10 increasing grid points with a finite density >= 0", field="density"
+        )
     if not 1 <= max_components <= 10:
         raise InputError("max_components must be between 1 and 10", field="max_components")
     if sample_size <= 1:
@@ -227,12 +251,14 @@ def fit_mixture(x: Any, density: Any, family: str = "normal", *, max_components:
     for j in range(1, max_components + 1):
         pi, params, loglik = _em(family, t, w, j)
         if not np.all(np.isfinite(params)) or np.any(params[:, 1] <= 0):
-            raise NumericalError(f"EM for {j} {family} components failed; try fewer "
-                                 "components or a finer grid")
+            raise NumericalError(
+                f"EM for {j} {family} components failed; try fewer components or a finer grid"
+            )
         names = {"normal": ("loc", "scale"), "beta": ("a", "b"), "gamma": ("a", "scale")}[family]
-        comps = tuple(Component(family, dict(zip(names, map(float, p), strict=True)),
-                                float(wt))
-                      for wt, p in zip(pi / pi.sum(), params, strict=True))
+        comps = tuple(
+            Component(family, dict(zip(names, map(float, p), strict=True)), float(wt))
+            for wt, p in zip(pi / pi.sum(), params, strict=True)
+        )
         q_err = float(np.max(np.abs(_mixture_quantiles(comps, family, levels) - target_q)))
         joint = np.log(pi)[:, None] + _logpdf(family, params, t)
         log_q = special.logsumexp(joint, axis=0) + log_jac
