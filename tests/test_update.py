@@ -54,7 +54,7 @@ def _mixture_moments(components) -> tuple[float, float]:
     return mean, second - mean**2
 
 
-# --- with_vague_component ---------------------------------------------------------------------------
+# --- with_vague_component ---------------------------------------------------------
 
 
 def test_with_vague_component_weights() -> None:
