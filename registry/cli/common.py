@@ -40,12 +40,6 @@ def ledger(db: str | None):  # type: ignore[no-untyped-def]
     return Ledger.open(db)
 
 
-CAUTION = (
-    "Caution: where a prior informs decisions about people (trial design, regulatory "
-    "submissions), borrowing must be pre-specified, its operating characteristics checked, "
-    "and local regulations and qualified statistical review followed."
-)
-
 # Options that select entries, shared by `entries` and `pool`.
 QuantityOption = Annotated[str | None, typer.Option("--quantity", help="Only this quantity.")]
 MeasureOption = Annotated[str | None, typer.Option("--measure", help="Only this measure.")]

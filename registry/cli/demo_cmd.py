@@ -8,8 +8,9 @@ from typing import Annotated
 
 import typer
 
-from registry.cli.common import CAUTION, err, ledger, out
-from registry.cli.pool_cmd import LEVEL_MEASURES, render
+from registry.caution import CAUTION
+from registry.cli.common import err, ledger, out
+from registry.cli.pool_cmd import render
 from registry.cli.prior_cmds import show, trace_tree
 from registry.cli.registry_cmds import entries_table
 
@@ -66,7 +67,7 @@ def demo(
         pooled,
         scale="log",
         title="Programme effect (INVENTED)",
-        no_effect_line="rate_ratio" not in LEVEL_MEASURES,
+        no_effect_line=True,
     )
     out.print("\n2. REML pooling of the programme's effect (one report per study):")
     render(pooled, "log")

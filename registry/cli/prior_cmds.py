@@ -10,7 +10,8 @@ from rich.markup import escape
 from rich.table import Table
 from rich.tree import Tree
 
-from registry.cli.common import CAUTION, DbOption, JsonOption, err, ledger, number, out, print_json
+from registry.caution import CAUTION
+from registry.cli.common import DbOption, JsonOption, err, ledger, number, out, print_json
 from registry.errors import CheckFailed
 
 if TYPE_CHECKING:

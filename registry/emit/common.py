@@ -7,6 +7,7 @@ import textwrap
 from collections.abc import Callable, Mapping
 
 from registry import __version__
+from registry.caution import CAUTION
 from registry.emit.names import sanitize
 from registry.evidence.scales import ANALYSIS_SCALE, MEANING, NATURAL_NAME, to_natural
 from registry.priors.value import Component, Prior
@@ -14,11 +15,6 @@ from registry.priors.value import Component, Prior
 # family -> (the language's function name, the scipy parameters as that language's arguments)
 Forms = Mapping[str, tuple[str, Callable[[Mapping[str, float]], dict[str, float]]]]
 
-CAUTION = (
-    "Caution: where this prior informs decisions about people (trial design, regulatory "
-    "submissions), the borrowing must be pre-specified, its operating characteristics "
-    "checked, and local regulations and qualified statistical review followed."
-)
 
 # Meanings of the two natural scales, which have no measure of their own in MEANING.
 _NATURAL_MEANING = {

@@ -11,7 +11,8 @@ from __future__ import annotations
 import json
 from typing import Any
 
-from registry.emit.common import CAUTION, meaning
+from registry.caution import CAUTION
+from registry.emit.common import meaning
 from registry.errors import InputError
 from registry.priors.value import Prior
 

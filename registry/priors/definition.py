@@ -59,6 +59,7 @@ from pathlib import Path
 from typing import Any
 
 from registry.errors import InputError
+from registry.evidence.sheets import CONTEXT_FIELDS
 from registry.priors.ratings import DOMAINS, DiscountMapping, levels_for
 
 NAME = re.compile(r"[a-z0-9][a-z0-9_-]*")
@@ -66,20 +67,7 @@ METHODS = ("common", "dl", "pm", "reml", "ml", "bayes")
 FAMILIES = ("auto", "normal", "student_t", "mixture", "beta", "gamma", "lognormal")
 MECHANISMS = ("power", "bias", "both", "none")
 TARGETS = ("predictive", "mean")
-WHERE_FIELDS = (
-    "tags",
-    "design",
-    "population",
-    "setting",
-    "intervention",
-    "comparator",
-    "outcome",
-    "timepoint",
-    "risk_of_bias",
-    "source",
-    "study",
-    "measure",
-)
+WHERE_FIELDS = ("tags", "source", "study", "measure", *CONTEXT_FIELDS)
 
 
 @dataclass(frozen=True)

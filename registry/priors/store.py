@@ -13,6 +13,7 @@ from typing import Any
 from sqlalchemy import func, select
 
 from registry import __version__
+from registry.caution import CAUTION
 from registry.errors import InputError, NotFoundError
 from registry.priors.build import Construction, construct
 from registry.priors.definition import Definition, definition_from_canonical
@@ -21,11 +22,6 @@ from registry.priors.value import Component, EntryUse, Prior
 from registry.storage.ledger import EntryView, Ledger
 from registry.storage.models import EntryRevision, PriorEntry, PriorVersion
 
-CAUTION = (
-    "Where this prior informs decisions about people (trial design, regulatory submissions), "
-    "borrowing must be pre-specified, its operating characteristics checked by simulation, and "
-    "local regulations and qualified statistical review followed."
-)
 LABEL = re.compile(r"(?P<name>[a-z0-9][a-z0-9_-]*)(@(?P<version>\d+))?")
 
 
@@ -233,7 +229,7 @@ def build_prior(ledger: Ledger, definition: Definition) -> StoredPrior:
 
 def list_priors(ledger: Ledger) -> list[StoredPrior]:
     """Every stored version, newest version of each name last."""
-    with ledger._sessions() as session:
+    with ledger.session() as session:
         rows = session.scalars(
             select(PriorVersion).order_by(PriorVersion.name, PriorVersion.version)
         )
@@ -241,7 +237,7 @@ def list_priors(ledger: Ledger) -> list[StoredPrior]:
 
 
 def get_prior(ledger: Ledger, label: str) -> StoredPrior:
-    with ledger._sessions() as session:
+    with ledger.session() as session:
         return _stored(session, _find(session, label))
 
 

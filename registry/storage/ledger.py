@@ -229,6 +229,10 @@ class Ledger:
     def url(self) -> str:
         return self.engine.url.render_as_string(hide_password=True)
 
+    def session(self) -> Session:
+        """A session for reading; writes go through `transaction`."""
+        return self._sessions()
+
     def transaction(self, *, commit: bool = True):  # type: ignore[no-untyped-def]
         return db.transaction(self._sessions, commit=commit)
 
