@@ -141,7 +141,7 @@ def test_elir_of_mixture_against_direct_quadrature(components: tuple) -> None:
     """ELIR = E_p[i_p / i_F] (Neuenschwander et al. 2020), computed here independently
     with scipy's log densities, finite differences and quad over theta."""
     s_u = 2.0
-    dists = [(math.log(c.weight), c.frozen()) for c in components]
+    dists = [(math.log(c.weight), c.dist.frozen()) for c in components]
 
     def logpdf(x: float) -> float:
         return float(special.logsumexp([lw + d.logpdf(x) for lw, d in dists]))

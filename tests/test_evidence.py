@@ -26,15 +26,18 @@ from statsmodels.stats.contingency_tables import Table2x2
 from statsmodels.tools.sm_exceptions import PerfectSeparationWarning
 
 from registry.errors import ConversionError
-from registry.evidence import convert, scales
+from registry.evidence import convert
 from registry.evidence.convert import (
+    ANALYSIS_SCALE,
     MEASURES,
     NUMERIC_FIELDS,
     derive,
     log_odds_ratio_to_smd,
     smd_to_log_odds_ratio,
 )
-from registry.evidence.scales import ANALYSIS_SCALE, to_analysis, to_natural
+from registry.values import scales
+from registry.values.measures import MEASURES as MEASURE_TABLE
+from registry.values.scales import to_analysis, to_natural
 
 SEEDED = settings(derandomize=True, deadline=None, max_examples=150)
 
@@ -656,7 +659,7 @@ def test_interval_must_contain_the_estimate(measure: str, below: bool) -> None:
 def test_scales_follow_the_spec() -> None:
     assert ANALYSIS_SCALE == SPEC_SCALES
     assert set(MEASURES) == set(SPEC_SCALES)
-    assert set(scales.MEANING) == set(MEASURES)
+    assert all(MEASURE_TABLE[m].meaning for m in MEASURES)
     assert set(scales.NATURAL_NAME) == set(scales.SCALES) == set(SPEC_SCALES.values())
 
 

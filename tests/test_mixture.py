@@ -21,7 +21,7 @@ def mixture_ppf(components: tuple[Component, ...], q: float) -> float:
     from scipy.optimize import brentq
 
     def cdf(v):
-        return sum(c.weight * c.frozen().cdf(v) for c in components)
+        return sum(c.weight * c.dist.frozen().cdf(v) for c in components)
 
     return brentq(lambda v: cdf(v) - q, -100, 100, xtol=1e-12)
 

@@ -30,7 +30,7 @@ def _quad_posterior(components, log_lik, lo: float, hi: float, points=None):
 
     def joint(j: int, power: int):
         c = components[j]
-        dist = c.frozen()
+        dist = c.dist.frozen()
         return integrate.quad(
             lambda t: t**power * math.exp(math.log(c.weight) + dist.logpdf(t) + log_lik(t)),
             lo,
@@ -49,8 +49,10 @@ def _quad_posterior(components, log_lik, lo: float, hi: float, points=None):
 
 
 def _mixture_moments(components) -> tuple[float, float]:
-    mean = sum(c.weight * c.frozen().mean() for c in components)
-    second = sum(c.weight * (c.frozen().var() + c.frozen().mean() ** 2) for c in components)
+    mean = sum(c.weight * c.dist.frozen().mean() for c in components)
+    second = sum(
+        c.weight * (c.dist.frozen().var() + c.dist.frozen().mean() ** 2) for c in components
+    )
     return mean, second - mean**2
 
 
@@ -87,9 +89,9 @@ def test_unit_information_components() -> None:
     assert c.params["scale"] == pytest.approx(1 / math.sqrt(0.4))
     c = unit_information_component(0.3, None, "beta", "probability")
     assert c.params["a"] + c.params["b"] == pytest.approx(1.0)
-    assert c.frozen().mean() == pytest.approx(0.3)
+    assert c.dist.frozen().mean() == pytest.approx(0.3)
     c = unit_information_component(0.7, None, "gamma", "rate")
-    assert c.frozen().mean() == pytest.approx(0.7)
+    assert c.dist.frozen().mean() == pytest.approx(0.7)
     assert 1 / c.params["scale"] == pytest.approx(1.0)
     with pytest.raises(InputError):
         unit_information_component(0.3, None, "normal", "identity")

@@ -26,7 +26,7 @@ LEVEL_MEASURES = ("proportion", "rate", "mean")
 
 
 def _interval(pair: Any, scale: str) -> str:
-    from registry.evidence.scales import to_natural
+    from registry.values.scales import to_natural
 
     if pair is None:
         return "not available"
@@ -104,7 +104,7 @@ def pool(
 
 def render(result: Any, scale: str) -> None:
     """A pooled result as text, on the analysis scale and, where it differs, the natural one."""
-    from registry.evidence.scales import to_natural
+    from registry.values.scales import to_natural
 
     natural = "" if scale == "identity" else f" (natural {to_natural(scale, result.mu):.4g})"
     out.print(f"[bold]{result.method}[/bold] pooling of k = {result.k} on the {scale} scale")

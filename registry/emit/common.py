@@ -9,18 +9,12 @@ from collections.abc import Callable, Mapping
 from registry import __version__
 from registry.caution import CAUTION
 from registry.emit.names import sanitize
-from registry.evidence.scales import ANALYSIS_SCALE, MEANING, NATURAL_NAME, to_natural
 from registry.priors.value import Component, Prior
+from registry.values.measures import MEASURES
+from registry.values.scales import NATURAL_NAME, NATURAL_SCALES, to_natural
 
 # family -> (the language's function name, the scipy parameters as that language's arguments)
 Forms = Mapping[str, tuple[str, Callable[[Mapping[str, float]], dict[str, float]]]]
-
-
-# Meanings of the two natural scales, which have no measure of their own in MEANING.
-_NATURAL_MEANING = {
-    "probability": "probability, on its natural scale",
-    "rate": "event rate (events per unit of exposure), on its natural scale",
-}
 
 
 def literal(x: float) -> str:
@@ -44,9 +38,10 @@ def keywords(args: Mapping[str, float]) -> str:
 
 def meaning(prior: Prior) -> str:
     """What a value of the parameter is, on the prior's scale."""
-    if prior.measure in MEANING and ANALYSIS_SCALE.get(prior.measure) == prior.scale:
-        return MEANING[prior.measure]
-    return _NATURAL_MEANING.get(prior.scale, f"value on the {prior.scale} scale")
+    row = MEASURES.get(prior.measure)
+    if row is not None and row.scale == prior.scale:
+        return row.meaning
+    return NATURAL_SCALES.get(prior.scale, f"value on the {prior.scale} scale")
 
 
 def has_natural(prior: Prior) -> bool:

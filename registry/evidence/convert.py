@@ -24,15 +24,11 @@ from dataclasses import dataclass
 from statistics import NormalDist
 
 from registry.errors import ConversionError
-from registry.evidence.scales import (
-    ANALYSIS_SCALE,
-    analysis_slope,
-    domain,
-    in_domain,
-    to_analysis,
-)
+from registry.values.measures import MEASURES as _TABLE
+from registry.values.measures import NAMES as MEASURES
+from registry.values.scales import analysis_slope, domain, in_domain, to_analysis
 
-MEASURES: tuple[str, ...] = tuple(ANALYSIS_SCALE)
+ANALYSIS_SCALE: dict[str, str] = {name: m.scale for name, m in _TABLE.items()}
 
 NUMERIC_FIELDS: tuple[str, ...] = (
     "estimate", "lower", "upper", "level", "se", "p",
@@ -44,9 +40,9 @@ NUMERIC_FIELDS: tuple[str, ...] = (
     "r",
 )  # fmt: skip
 
-RATIO_MEASURES = frozenset({"odds_ratio", "risk_ratio", "rate_ratio", "hazard_ratio"})
+RATIO_MEASURES = frozenset(name for name, m in _TABLE.items() if m.ratio)
 # Measures with no null value, so a two-sided p-value says nothing about their SE.
-_NO_NULL = frozenset({"proportion", "rate", "mean"})
+_NO_NULL = frozenset(name for name, m in _TABLE.items() if m.is_level)
 _DEFAULT_LEVEL = 0.95
 _STANDARD_NORMAL = NormalDist()
 _CHINN = math.sqrt(3.0) / math.pi  # d = ln(OR) * sqrt(3)/pi  (Chinn 2000)
@@ -78,8 +74,10 @@ def _upper_z(tail: float) -> float:
 
 def _value_rule(measure: str) -> tuple[Callable[[float], bool], str]:
     """What a natural-scale estimate or bound of ``measure`` must be."""
-    if measure == "risk_difference":
-        return (lambda x: -1.0 <= x <= 1.0), "between -1 and 1"
+    bounds = _TABLE[measure].bounds
+    if bounds is not None:
+        lo, hi = bounds
+        return (lambda x: lo <= x <= hi), f"between {lo:g} and {hi:g}"
     scale = ANALYSIS_SCALE[measure]
     return (lambda x: in_domain(scale, x)), domain(scale)
 

@@ -160,7 +160,7 @@ def _grid(pooled: Any, definition: Definition, k: int) -> tuple[Any, Any, Compon
             "student_t",
             {"df": float(k - 2), "loc": pooled.mu, "scale": math.sqrt(pooled.tau2 + pooled.se**2)},
         )
-    dist = closed.frozen()
+    dist = closed.dist.frozen()
     x = np.linspace(dist.ppf(1e-6), dist.ppf(1 - 1e-6), 2001)
     return x, dist.pdf(x), closed
 
@@ -412,7 +412,7 @@ def _plausible(
     definition: Definition, scale: str, components: Sequence[Component], analysis_scale: str
 ) -> dict[str, Any] | None:
     """The prior's probability inside the definition's plausible range (natural scale)."""
-    from registry.evidence.scales import to_analysis
+    from registry.values.scales import to_analysis
 
     bounds = definition["output.plausible"]
     if bounds is None:

@@ -360,7 +360,7 @@ def _elir(prior: Prior, model: DataModel) -> tuple[float, dict[str, Any]]:
 
     total, err = 0.0, 0.0
     for c in components:
-        dist = c.frozen()
+        dist = c.dist.frozen()
 
         def integrand(u: float, c: Component = c) -> float:
             # clip keeps exp/expit finite where a quantile underflows to a boundary
@@ -373,7 +373,7 @@ def _elir(prior: Prior, model: DataModel) -> tuple[float, dict[str, Any]]:
         breaks = sorted(
             u
             for u in {
-                float(dist.cdf(o.frozen().ppf(q)))
+                float(dist.cdf(o.dist.frozen().ppf(q)))
                 for o in components
                 if o is not c
                 for q in (1e-3, 0.5, 1 - 1e-3)

@@ -16,7 +16,7 @@ from statistics import NormalDist
 from typing import Any
 
 from registry.errors import InputError
-from registry.evidence import scales
+from registry.values import scales
 
 FORMATS = ("png", "pdf", "svg")
 

@@ -178,7 +178,7 @@ def _mixture_quantiles(
     components: tuple[Component, ...], family: str, levels: np.ndarray
 ) -> np.ndarray:
     """Mixture quantiles on the analysis scale (by root finding on the natural scale)."""
-    frozen = [(c.weight, c.frozen()) for c in components]
+    frozen = [(c.weight, c.dist.frozen()) for c in components]
     out = []
     for q in levels:
         lo = min(f.ppf(q) for _, f in frozen)

@@ -1,8 +1,7 @@
 """Analysis scales: where each measure is pooled, and the plain maths to move on and off it.
 
 Every reported measure is analysed on a scale where its sampling distribution is close to
-normal (Borenstein, Hedges, Higgins & Rothstein 2009, *Introduction to Meta-Analysis*,
-ch. 5-6; Cochrane Handbook v6 §6.3):
+normal (which measure goes where is the measure table, `registry.values.measures`):
 
 - ``log``: ratios (odds, risk, rate, hazard) and event rates, ``g(x) = ln x``;
 - ``logit``: proportions, ``g(p) = ln(p / (1 - p))``;
@@ -20,21 +19,6 @@ from dataclasses import dataclass
 
 from registry.errors import ConversionError
 
-ANALYSIS_SCALE: dict[str, str] = {
-    "proportion": "logit",
-    "rate": "log",
-    "mean": "identity",
-    "mean_difference": "identity",
-    "smd": "identity",
-    "odds_ratio": "log",
-    "risk_ratio": "log",
-    "rate_ratio": "log",
-    "hazard_ratio": "log",
-    "risk_difference": "identity",
-    "correlation": "fisher_z",
-    "coefficient": "identity",
-}
-
 NATURAL_NAME: dict[str, str] = {
     "identity": "value as reported",
     "log": "ratio or rate",
@@ -42,19 +26,19 @@ NATURAL_NAME: dict[str, str] = {
     "fisher_z": "correlation",
 }
 
-MEANING: dict[str, str] = {
-    "proportion": "logit of a probability",
-    "rate": "log of an event rate (events per unit of exposure)",
-    "mean": "mean, in the outcome's own units",
-    "mean_difference": "difference in means (arm a minus arm b), in the outcome's units",
-    "smd": "standardized mean difference (arm a minus arm b)",
-    "odds_ratio": "log odds ratio (arm a over arm b)",
-    "risk_ratio": "log risk ratio (arm a over arm b)",
-    "rate_ratio": "log rate ratio (arm a over arm b)",
-    "hazard_ratio": "log hazard ratio (arm a over arm b)",
-    "risk_difference": "risk difference (arm a minus arm b)",
-    "correlation": "Fisher z of a correlation",
-    "coefficient": "regression coefficient, on the scale the model reported it",
+# A prior lives on an analysis scale or, for the conjugate families, on a natural scale.
+NATURAL_SCALES: dict[str, str] = {
+    "probability": "probability, on its natural scale",
+    "rate": "event rate (events per unit of exposure), on its natural scale",
+}
+# The support a distribution on each scale must have.
+SUPPORT: dict[str, str] = {
+    "identity": "real",
+    "log": "real",
+    "logit": "real",
+    "fisher_z": "real",
+    "probability": "unit",
+    "rate": "positive",
 }
 
 
@@ -112,6 +96,7 @@ _SCALES: dict[str, _Scale] = {
 }
 
 SCALES: tuple[str, ...] = tuple(_SCALES)
+PRIOR_SCALES: tuple[str, ...] = (*SCALES, *NATURAL_SCALES)
 
 
 def _scale(scale: str) -> _Scale:
