@@ -424,7 +424,7 @@ def _rich_prior() -> Prior:
         parameter="log rate ratio of falls",
         quantity="falls-rr",
         measure="rate_ratio",
-        ess={"morita": 12.345678901234567, "method": "x"},
+        ess={"curvature_at_mean": 12.345678901234567, "method": "x"},
         entries=(EntryUse(3, 2, 0.25), EntryUse(9, 1, 0.75)),
     )
 

@@ -260,5 +260,5 @@ def test_worse_rating_never_narrows_nor_raises_ess(
     ess_values = []
     for sd in (sd_before, sd_after):
         prior = Prior("p", 1, "d", "identity", (Component("normal", {"loc": 0.0, "scale": sd}),))
-        ess_values.append(ess(prior, method="moment", unit_sd=2.0).value)
+        ess_values.append(ess(prior, method="variance_match", unit_sd=2.0).value)
     assert ess_values[1] <= ess_values[0] * (1 + 1e-12)

@@ -15,14 +15,26 @@ import pytest
 from scipy import integrate, special, stats
 
 from registry.errors import InputError
-from registry.priors.update import (
-    unit_information_component,
-    update_beta,
-    update_gamma,
-    update_normal,
-    with_vague_component,
-)
-from registry.priors.value import Component
+from registry.priors.update import update, vague_component, with_vague_component
+from registry.values.prior import Component, Prior
+
+
+def unit_information_component(mean: float, unit_sd, family: str, scale: str, likelihood=None):
+    """The default vague component for a one-component prior of `family` with this mean."""
+    informative = {
+        "normal": lambda: Component("normal", {"loc": mean, "scale": 0.1}),
+        "beta": lambda: Component("beta", {"a": 10 * mean, "b": 10 * (1 - mean)}),
+        "gamma": lambda: Component("gamma", {"a": 10.0, "scale": mean / 10}),
+    }[family]()
+    if likelihood is None:
+        likelihood = {"probability": "binomial", "rate": "poisson", "logit": "binomial"}.get(
+            scale, "normal"
+        )
+    return vague_component(
+        Prior.candidate(scale, (informative,)), likelihood=likelihood, unit_sd=unit_sd
+    ).component
+
+
 
 
 def _quad_posterior(components, log_lik, lo: float, hi: float, points=None):
@@ -76,29 +88,60 @@ def test_with_vague_component_weights() -> None:
         with_vague_component(informative, Component("beta", {"a": 0.5, "b": 0.5}), 0.2)
 
 
-def test_unit_information_components() -> None:
-    """One unit of information at the mean: normal sd s_u; on logit, s_u^2 = 1/(p(1-p));
-    on a log rate, s_u^2 = 1/lambda; beta a + b = 1; gamma rate 1 (Fisher information of
-    one Bernoulli trial and of one unit of Poisson exposure: common practice)."""
+def test_default_vague_components() -> None:
+    """One unit of data at the prior mean on an analysis scale: normal sd s_u; on logit,
+    s_u^2 = 1/(p(1-p)) (one Bernoulli trial); on a log rate, sd 1 (one expected event: the
+    information about log lambda in exposure E is lambda E). Natural scales: the uniform
+    Beta(1, 1), and the exponential Gamma(1, scale m). Fisher information of a Bernoulli
+    trial and of Poisson counts: common practice."""
     c = unit_information_component(0.3, 2.5, "normal", "identity")
     assert c.params == {"loc": 0.3, "scale": 2.5}
     c = unit_information_component(-1.2, None, "normal", "logit")
     p = special.expit(-1.2)
     assert c.params["scale"] == pytest.approx(1 / math.sqrt(p * (1 - p)))
     c = unit_information_component(math.log(0.4), None, "normal", "log", likelihood="poisson")
-    assert c.params["scale"] == pytest.approx(1 / math.sqrt(0.4))
+    assert c.params["scale"] == pytest.approx(1.0)
     c = unit_information_component(0.3, None, "beta", "probability")
-    assert c.params["a"] + c.params["b"] == pytest.approx(1.0)
-    assert c.dist.frozen().mean() == pytest.approx(0.3)
+    assert c.params == {"a": 1.0, "b": 1.0}
     c = unit_information_component(0.7, None, "gamma", "rate")
     assert c.dist.frozen().mean() == pytest.approx(0.7)
-    assert 1 / c.params["scale"] == pytest.approx(1.0)
+    assert c.params["a"] == 1.0
     with pytest.raises(InputError):
         unit_information_component(0.3, None, "normal", "identity")
-    with pytest.raises(InputError):
-        unit_information_component(1.3, None, "beta", "probability")
-    with pytest.raises(InputError):
-        unit_information_component(0.3, None, "student_t", "identity")
+
+
+@pytest.mark.parametrize("factor", [1e-3, 1.0, 1e3])
+def test_vague_rate_component_does_not_depend_on_the_unit_of_exposure(factor: float) -> None:
+    """The same rate in another unit of exposure (rate / factor) gives the same vague
+    component in that unit: its shape is unchanged and its scale divides by the factor, so
+    it carries the information of one expected event in any unit."""
+    base = unit_information_component(0.8, None, "gamma", "rate")
+    other = unit_information_component(0.8 / factor, None, "gamma", "rate")
+    assert other.params["a"] == base.params["a"]
+    assert other.params["scale"] == pytest.approx(base.params["scale"] / factor, rel=1e-12)
+    # the normal on the log rate is the same whatever the unit
+    log_base = unit_information_component(math.log(0.8), None, "normal", "log", "poisson")
+    log_other = unit_information_component(
+        math.log(0.8 / factor), None, "normal", "log", "poisson"
+    )
+    assert log_other.params["scale"] == log_base.params["scale"]
+
+
+def test_default_beta_vague_component_is_not_u_shaped() -> None:
+    """A Beta(a, b) density is U-shaped when a < 1 and b < 1; the default has neither."""
+    for mean in (0.01, 0.26, 0.5, 0.9):
+        c = unit_information_component(mean, None, "beta", "probability")
+        assert c.params["a"] >= 1 and c.params["b"] >= 1
+        assert stats.beta(c.params["a"], c.params["b"]).cdf(0.01) == pytest.approx(0.01)
+
+
+def test_vague_component_given_in_the_definition() -> None:
+    informative = Prior.candidate("probability", (Component("beta", {"a": 3.0, "b": 9.0}),))
+    given = vague_component(informative, "beta:0.5,0.5", likelihood="binomial")
+    assert given.component.params == {"a": 0.5, "b": 0.5}
+    for bad in ("beta:1", "cauchy:1,2", "beta:x,1", "beta"):
+        with pytest.raises(InputError):
+            vague_component(informative, bad, likelihood="binomial")
 
 
 # --- posterior weights against quad -------------------------------------------------------
@@ -112,7 +155,7 @@ def test_normal_robust_mixture_against_quad(y: float) -> None:
         unit_information_component(0.2, 2.0, "normal", "identity"),
         0.2,
     )
-    posterior = update_normal(components, y, se)
+    posterior = update(components, y, se)
     weights, mean, var = _quad_posterior(
         components, lambda t: stats.norm.logpdf(y, t, se), -15, 15, points=[0.2, y]
     )
@@ -135,7 +178,7 @@ def test_beta_robust_mixture_against_quad(events: float, n: float) -> None:
         # binomial log likelihood, written out so non-integer counts work too
         return events * math.log(t) + (n - events) * math.log1p(-t)
 
-    posterior = update_beta(components, events, n)
+    posterior = update(components, events, n)
     weights, mean, var = _quad_posterior(components, log_lik, 0.0, 1.0, points=[0.05, 0.2, 0.5])
     assert [c.weight for c in posterior] == pytest.approx(weights, rel=1e-6)
     assert _mixture_moments(posterior) == pytest.approx((mean, var), rel=1e-6)
@@ -157,7 +200,7 @@ def test_gamma_robust_mixture_against_quad(events: int, exposure: float) -> None
         unit_information_component(0.5, None, "gamma", "rate"),
         0.2,
     )
-    posterior = update_gamma(components, events, exposure)
+    posterior = update(components, events, exposure)
     weights, mean, var = _quad_posterior(
         components,
         lambda t: stats.poisson.logpmf(events, t * exposure),
@@ -178,8 +221,8 @@ def test_vague_weight_rises_under_conflict() -> None:
         unit_information_component(0.0, 1.0, "normal", "identity"),
         w,
     )
-    assert update_normal(components, 0.0, 0.1)[-1].weight < w
-    assert update_normal(components, 1.0, 0.1)[-1].weight > 0.9
+    assert update(components, 0.0, 0.1)[-1].weight < w
+    assert update(components, 1.0, 0.1)[-1].weight > 0.9
 
 
 def test_underflowed_component_is_dropped() -> None:
@@ -188,7 +231,7 @@ def test_underflowed_component_is_dropped() -> None:
         Component("normal", {"loc": 0.0, "scale": 100.0}),
         0.1,
     )
-    posterior = update_normal(components, 500.0, 0.01)
+    posterior = update(components, 500.0, 0.01)
     assert len(posterior) == 1 and posterior[0].weight == 1.0
     assert posterior[0].params["loc"] == pytest.approx(500.0, rel=1e-6)
 
@@ -197,14 +240,21 @@ def test_updates_check_their_input() -> None:
     normal = (Component("normal", {"loc": 0.0, "scale": 1.0}),)
     beta = (Component("beta", {"a": 1.0, "b": 1.0}),)
     gamma = (Component("gamma", {"a": 1.0, "scale": 1.0}),)
+    with pytest.raises(InputError):  # no one conjugate likelihood for a mixed prior
+        update(
+            (
+                Component("normal", {"loc": 0.0, "scale": 1.0}, 0.5),
+                Component("beta", {"a": 1.0, "b": 1.0}, 0.5),
+            ),
+            0.0,
+            1.0,
+        )
     with pytest.raises(InputError):
-        update_normal(beta, 0.0, 1.0)
+        update(normal, 0.0, 0.0)
     with pytest.raises(InputError):
-        update_normal(normal, 0.0, 0.0)
+        update(beta, 5, 4)
     with pytest.raises(InputError):
-        update_beta(beta, 5, 4)
+        update(gamma, -1, 2.0)
     with pytest.raises(InputError):
-        update_gamma(gamma, -1, 2.0)
-    with pytest.raises(InputError):
-        update_normal((Component("normal", {"loc": 0.0, "scale": 1.0}, 0.5),), 0.0, 1.0)
-    assert np.isfinite(update_gamma(gamma, 0, 2.0)[0].params["scale"])
+        update((Component("normal", {"loc": 0.0, "scale": 1.0}, 0.5),), 0.0, 1.0)
+    assert np.isfinite(update(gamma, 0, 2.0)[0].params["scale"])

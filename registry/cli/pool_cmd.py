@@ -48,11 +48,25 @@ def pool(
         str, typer.Option(help="normal, or exact (count likelihood; bayes only).")
     ] = "normal",
     tau_prior: Annotated[
-        str, typer.Option(help="bayes: half-normal:S, half-t:S,DF or log-normal:M,S.")
-    ] = "half-normal:0.5",
+        str | None,
+        typer.Option(
+            help="bayes: half-normal:S, half-t:S,DF or log-normal:M,S (S may be K*unit_sd); "
+            "default half-normal:0.5 on log and logit scales, required on others."
+        ),
+    ] = None,
+    unit_sd: Annotated[
+        float | None,
+        typer.Option("--unit-sd", help="bayes: the sd of one unit's observation, for K*unit_sd."),
+    ] = None,
     mu_prior: Annotated[str, typer.Option(help="bayes: flat or normal:MEAN,SD.")] = "flat",
     hksj: Annotated[
         bool, typer.Option("--hksj", help="Hartung-Knapp-Sidik-Jonkman interval.")
+    ] = False,
+    include_retracted: Annotated[
+        bool,
+        typer.Option(
+            "--include-retracted", help="Pool entries of retracted sources too (say why)."
+        ),
     ] = False,
     plot: Annotated[
         Path | None, typer.Option(help="Write a forest plot (.png, .pdf or .svg).")
@@ -66,9 +80,29 @@ def pool(
     """
     from registry.priors.selection import pool_entries, repeated_studies
 
-    entries = ledger(db).entries(
-        quantity=quantity, measure=measure, tags=tag or (), sources=source or (), ids=entry or ()
+    from registry.priors.selection import without_retracted
+
+    entries, left_out = without_retracted(
+        ledger(db).entries(
+            quantity=quantity,
+            measure=measure,
+            tags=tag or (),
+            sources=source or (),
+            ids=entry or (),
+            include_retracted=True,
+        ),
+        include_retracted,
     )
+    if left_out:
+        err.print(
+            f"note: entries {[e.id for e in left_out]} come from retracted sources and are left "
+            "out (--include-retracted to pool them)"
+        )
+    elif include_retracted and any(e.retracted for e in entries):
+        err.print(
+            f"warning: entries {[e.id for e in entries if e.retracted]} come from retracted "
+            "sources and are pooled, as asked"
+        )
     for study, ids in repeated_studies(entries).items():
         err.print(
             f"warning: study {study} is reported by entries {ids}; it counts more than "
@@ -81,6 +115,8 @@ def pool(
         tau_prior=tau_prior,
         mu_prior=mu_prior,
         hksj=hksj,
+        unit_sd=unit_sd,
+        include_retracted=include_retracted,
     )
     if plot is not None:
         from registry.report.forest import forest_plot

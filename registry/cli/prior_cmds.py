@@ -13,6 +13,7 @@ from rich.tree import Tree
 from registry.caution import CAUTION
 from registry.cli.common import DbOption, JsonOption, err, ledger, number, out, print_json
 from registry.errors import CheckFailed
+from registry.values.ess_methods import ESS_METHODS
 
 if TYPE_CHECKING:
     from registry.priors.store import StoredPrior
@@ -24,7 +25,7 @@ Label = Annotated[
 
 def _ess(stored: StoredPrior) -> str:
     ess = stored.prior.ess
-    parts = [f"{m} {ess[m]:.1f}" for m in ("elir", "moment", "morita") if ess.get(m) is not None]
+    parts = [f"{m} {ess[m]:.1f}" for m in ESS_METHODS if ess.get(m) is not None]
     return f"{', '.join(parts)} {ess.get('unit', '')}"
 
 
@@ -47,9 +48,9 @@ def show(stored: StoredPrior) -> None:
     out.print(f"  ess         {_ess(stored)}")
     out.print(
         f"  from        {len(stored.uses)} entries; global power weight "
-        f"{stored.result['global_power']:.4g}"
+        f"{stored.result.global_power:.4g}"
     )
-    for note in stored.result["notes"]:
+    for note in stored.result.notes:
         out.print(f"  note        {note}")
     for reason in stored.stale:
         out.print(f"  [red]stale[/red]       {reason}")
@@ -119,7 +120,7 @@ def prior(label: Label, db: DbOption = None, as_json: JsonOption = False) -> Non
         return
     show(stored)
     table = Table("entry", "rev", "weight", "power", "bias sd", "below best")
-    for u in stored.uses:
+    for u in (use.to_dict() for use in stored.uses):
         worse = [f"{r['domain']}: {r['level']}" for r in u["ratings"] if r["rationale"]]
         table.add_row(
             str(u["id"]),

@@ -141,8 +141,13 @@ def entries_list(
     """
     if ctx.invoked_subcommand is not None:
         return
+    # a listing shows the whole registry; retracted sources are flagged, not hidden
     views = ledger(db).entries(
-        quantity=quantity, measure=measure, tags=tag or (), sources=source or ()
+        quantity=quantity,
+        measure=measure,
+        tags=tag or (),
+        sources=source or (),
+        include_retracted=True,
     )
     if as_json:
         print_json({"entries": [v.to_dict() for v in views]})

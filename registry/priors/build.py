@@ -11,7 +11,8 @@ Steps, each with its published source:
 3. pooling (registry.synthesis); the target is the predictive distribution of a new study's
    parameter (Neuenschwander et al. 2010) or the mean effect;
 4. the output family fitted to the target (a mixture by EM, or moment matching);
-5. a robust vague component (Schmidli et al. 2014), by default worth one unit of data;
+5. a robust vague component (Schmidli et al. 2014), weakly informative and independent of
+   the unit of exposure or measurement (`registry.priors.update.vague_component`);
 6. effective sample size (Morita, Thall & Müller 2008; Neuenschwander et al. 2020), with an
    optional cap met by solving for the global power weight.
 """
@@ -21,34 +22,26 @@ from __future__ import annotations
 import hashlib
 import json
 import math
-from collections.abc import Sequence
+from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
 from registry.errors import InputError
 from registry.priors.definition import Definition
 from registry.priors.ratings import DOMAINS, Discount, Rating, discount_for, levels_for
-from registry.priors.selection import EntryLike, pool_entries
-from registry.priors.value import Component, Prior
+from registry.priors.selection import EntryLike, check_selection, pool_entries
+from registry.values.built import BuildResult
+from registry.values.families import Beta, Gamma, LogNormal, Normal, StudentT
+from registry.values.measures import Measure
+from registry.values.prior import Component, Prior
 
 DIGEST_FORMAT = 1
-# measure -> (default sd of one unit's observation on the analysis scale, its unit, source)
-DEFAULT_UNIT_SD = {
-    "rate_ratio": (
-        2.0,
-        "events",
-        "var(log ratio) ≈ 4/events (Spiegelhalter, Abrams & Myles 2004, recalled from memory)",
-    ),
-    "hazard_ratio": (
-        2.0,
-        "events",
-        "var(log hazard ratio) ≈ 4/events (Spiegelhalter, Abrams "
-        "& Myles 2004, recalled from memory)",
-    ),
-    "smd": (2.0, "participants", "var(d) ≈ 4/N for two equal arms (Borenstein et al. 2009)"),
-}
-COUNT_LIKELIHOOD = {"proportion": "binomial", "rate": "poisson"}
-NATURAL_FAMILY = {"proportion": ("beta", "probability"), "rate": ("gamma", "rate")}
+# The effective sample size that is the prior's headline figure and that a cap is met on:
+# the expected local information ratio (Neuenschwander, Weber, Schmidli & O'Hagan 2020).
+ESS_METHOD = "expected_information"
+# A frequentist predictive target is a Student-t with k - 2 degrees of freedom; below 3 it has
+# no finite variance, so neither the ESS nor the emitted summaries would mean anything.
+MIN_PREDICTIVE_DF = 3
 
 
 @dataclass(frozen=True)
@@ -75,10 +68,16 @@ class Construction:
     """Everything a build computes; `result` is what the registry stores."""
 
     digest: str
-    scale: str
-    components: tuple[Component, ...]
+    result: BuildResult
     rated: tuple[Rated, ...]
-    result: dict[str, Any] = field(repr=False)
+
+    @property
+    def scale(self) -> str:
+        return self.result.scale
+
+    @property
+    def components(self) -> tuple[Component, ...]:
+        return self.result.components
 
 
 def _matches(where: dict[str, Any], entry: Any) -> bool:
@@ -139,136 +138,192 @@ def _discounts(
     return out
 
 
-def _grid(pooled: Any, definition: Definition, k: int) -> tuple[Any, Any, Component | None]:
-    """The target on the analysis scale as a density on a grid, and its closed form if any."""
+@dataclass(frozen=True)
+class Target:
+    """The distribution the prior approximates, on the analysis scale: exact moments, the
+    density on a grid, and its closed form where it has one."""
+
+    mean: float
+    sd: float
+    x: Any = field(repr=False)
+    density: Any = field(repr=False)
+    closed: Component | None = None
+
+
+def _target(pooled: Any, definition: Definition, k: int) -> Target:
     import numpy as np
 
-    target = definition["target"]
-    if pooled.method == "bayes" and target == "predictive":
-        return np.asarray(pooled.predictive.x), np.asarray(pooled.predictive.density), None
-    if target == "mean":
-        closed = Component("normal", {"loc": pooled.mu, "scale": pooled.se})
+    if getattr(pooled, "predictive", None) is not None and definition["target"] == "predictive":
+        p = pooled.predictive
+        return Target(p.mean, p.sd, np.asarray(p.x), np.asarray(p.density))
+    if definition["target"] == "mean":
+        closed = Component.of(Normal(pooled.mu, pooled.se))
     elif pooled.prediction is None:
         raise InputError(
             "a predictive target from a frequentist method needs a between-study "
             'variance and k >= 3; use method = "bayes" or target = "mean"',
             field="target",
         )
+    elif k - 2 < MIN_PREDICTIVE_DF:
+        raise InputError(
+            f"with k = {k} studies the frequentist predictive is a Student-t with {k - 2} "
+            f"degrees of freedom, whose variance is {'undefined' if k - 2 <= 1 else 'infinite'}"
+            ' (its mean too, for 1); use method = "bayes" (a proper prior on tau), more '
+            'studies, or target = "mean"',
+            field="target",
+        )
     else:
         # Higgins, Thompson & Spiegelhalter (2009): theta_new ~ mu + sqrt(tau² + se²) t_{k-2}
-        closed = Component(
-            "student_t",
-            {"df": float(k - 2), "loc": pooled.mu, "scale": math.sqrt(pooled.tau2 + pooled.se**2)},
+        closed = Component.of(
+            StudentT(float(k - 2), pooled.mu, math.sqrt(pooled.tau2 + pooled.se**2))
         )
-    dist = closed.dist.frozen()
+    dist = closed.dist
     x = np.linspace(dist.ppf(1e-6), dist.ppf(1 - 1e-6), 2001)
-    return x, dist.pdf(x), closed
+    return Target(dist.mean(), math.sqrt(dist.var()), x, dist.pdf(x), closed)
 
 
-def _moments(x: Any, density: Any) -> tuple[float, float]:
-    import numpy as np
+@dataclass(frozen=True)
+class Fitted:
+    components: tuple[Component, ...]
+    scale: str
+    fit: dict[str, Any]
+    warnings: tuple[str, ...] = ()
 
-    w = density / np.trapezoid(density, x)
-    mean = float(np.trapezoid(w * x, x))
-    return mean, float(math.sqrt(np.trapezoid(w * (x - mean) ** 2, x)))
 
-
-def _fit_family(
-    x: Any, density: Any, closed: Component | None, family: str, measure: str, scale: str
-) -> tuple[tuple[Component, ...], str, dict[str, Any]]:
-    """Components of the output family and the scale they live on, with the fit's error."""
-    from registry.synthesis.mixture import fit_mixture
-
-    if family == "auto":
-        family = NATURAL_FAMILY.get(measure, ("mixture",))[0] if closed is None else "closed"
-    if family == "closed" or (
-        family == "student_t" and closed is not None and closed.family == "student_t"
-    ):
-        return (closed,), scale, {"method": "closed form"}
-    if family == "student_t":
+def _closed(target: Target, _row: Measure, scale: str, _cap: int) -> Fitted:
+    if target.closed is None:
         raise InputError(
-            "a Student-t prior comes from a frequentist predictive target; use "
-            'family = "normal" or "mixture" here',
+            "this target has no closed form; choose normal, mixture, or the measure's natural "
+            "family",
             field="output.family",
         )
-    if family == "normal" or (
-        family == "mixture" and closed is not None and closed.family == "normal"
-    ):
-        mean, sd = _moments(x, density)
-        return (
-            (Component("normal", {"loc": mean, "scale": sd}),),
-            scale,
-            {"method": "moment matching"},
-        )
-    if family == "lognormal":
-        if scale != "log":
-            raise InputError(
-                "a log-normal prior needs a quantity on the log scale", field="output.family"
-            )
-        mean, sd = _moments(x, density)
-        natural = "rate" if measure == "rate" else "ratio"
-        return (
-            (Component("lognormal", {"s": sd, "scale": math.exp(mean)}),),
-            natural,
-            {"method": "moment matching on the log scale"},
-        )
-    if family in ("beta", "gamma"):
-        wanted = NATURAL_FAMILY.get(measure)
-        if wanted is None or wanted[0] != family:
-            raise InputError(
-                f"a {family} prior needs a "
-                f"{'proportion' if family == 'beta' else 'rate'}, not a {measure}",
-                field="output.family",
-            )
-        # The fit takes the density on the analysis scale (logit or log) itself.
-        fit = fit_mixture(x, density, family)
-        return (
-            tuple(fit.components),
-            wanted[1],
-            {"method": "EM mixture fit", "components": fit.n_components, **fit.error},
-        )
-    fit = fit_mixture(x, density, "normal")
-    return (
-        tuple(fit.components),
+    return Fitted((target.closed,), scale, {"method": "closed form"})
+
+
+def _normal(target: Target, _row: Measure, scale: str, _cap: int) -> Fitted:
+    """Moment matching with the target's exact mean and sd (a normal target is kept exactly)."""
+    return Fitted(
+        (Component.of(Normal(target.mean, target.sd)),),
         scale,
-        {"method": "EM mixture fit", "components": fit.n_components, **fit.error},
+        {
+            "method": "closed form"
+            if target.closed is not None and target.closed.family == Normal.name
+            else "moment matching (exact moments)"
+        },
     )
 
 
-def data_model(measure: str, scale: str, definition: Definition) -> dict[str, Any]:
-    """One unit of data for the effective sample size and the vague component."""
-    if scale in ("probability", "logit") or (measure in COUNT_LIKELIHOOD and scale != "identity"):
-        likelihood = COUNT_LIKELIHOOD.get(measure, "binomial")
-        unit = definition["output.ess_unit"] or (
-            "participants" if likelihood == "binomial" else "units of exposure"
+def _lognormal(target: Target, row: Measure, scale: str, _cap: int) -> Fitted:
+    if scale != "log":
+        raise InputError(
+            "a log-normal prior needs a quantity on the log scale", field="output.family"
         )
-        return {
-            "likelihood": likelihood,
-            "unit_sd": None,
-            "unit": unit,
-            "source": "Fisher information of one observation",
-        }
-    unit_sd = definition["output.unit_sd"]
-    unit = definition["output.ess_unit"]
-    source = "output.unit_sd of the definition"
-    if unit_sd is None:
-        if scale == "fisher_z":
-            unit_sd, default_unit, source = 1.0, "participants", "var(z) = 1/(n - 3)"
-        elif measure in DEFAULT_UNIT_SD:
-            unit_sd, default_unit, source = DEFAULT_UNIT_SD[measure]
-        else:
+    return Fitted(
+        (Component.of(LogNormal(target.sd, math.exp(target.mean))),),
+        row.natural_scale or "ratio",
+        {"method": "moment matching on the log scale (exact moments)"},
+    )
+
+
+def _mixture_of(family: str, natural: bool) -> Callable[[Target, Measure, str, int], Fitted]:
+    def fit(target: Target, row: Measure, scale: str, cap: int) -> Fitted:
+        from registry.synthesis.mixture import QUANTILE_ERROR_BOUND, VARIANCE_BOUND, fit_mixture
+
+        if natural and row.natural_family != family:
             raise InputError(
-                f"the effective sample size of a {measure} prior needs "
-                "output.unit_sd (the sd of one unit's observation)",
-                field="output.unit_sd",
+                f"a {family} prior needs a measure whose natural family it is, not a {row.name}",
+                field="output.family",
             )
-        unit = unit or default_unit
-    return {
-        "likelihood": "normal",
-        "unit_sd": unit_sd,
-        "unit": unit or "participants",
-        "source": source,
-    }
+        if target.closed is not None and target.closed.family == family:
+            return _closed(target, row, scale, cap)
+        mixture = fit_mixture(target.x, target.density, family, max_components=cap)
+        error = mixture.error
+        warnings = ()
+        if not mixture.meets_bounds:
+            warnings = (
+                f"the {family} mixture approximation misses its bound with {cap} components at "
+                f"most: quantile error {error['quantile_relative']:.3g} of the sd (bound "
+                f"{QUANTILE_ERROR_BOUND:g}), variance ratio {error['variance_ratio']:.4g} "
+                f"(bound 1 ± {VARIANCE_BOUND:g}); raise output.max_components or choose "
+                "another family",
+            )
+        return Fitted(
+            mixture.components,
+            row.natural_scale if natural else scale,
+            {
+                "method": "EM mixture fit",
+                "components": mixture.n_components,
+                "meets_bounds": mixture.meets_bounds,
+                "max_components": cap,
+                **error,
+            },
+            warnings,
+        )
+
+    return fit
+
+
+# output.family -> how the target becomes the prior's components
+_FAMILY_FITS: dict[str, Callable[[Target, Measure, str, int], Fitted]] = {
+    "closed": _closed,
+    StudentT.name: _closed,
+    Normal.name: _normal,
+    LogNormal.name: _lognormal,
+    Beta.name: _mixture_of(Beta.name, natural=True),
+    Gamma.name: _mixture_of(Gamma.name, natural=True),
+    "mixture": _mixture_of(Normal.name, natural=False),
+}
+
+
+def _fit_family(target: Target, definition: Definition, row: Measure, scale: str) -> Fitted:
+    """Components of the output family and the scale they live on, with the fit's error."""
+    family = definition["output.family"]
+    if family == "auto":
+        family = "closed" if target.closed is not None else row.natural_family or "mixture"
+    return _FAMILY_FITS[family](target, row, scale, definition["output.max_components"])
+
+
+@dataclass(frozen=True)
+class UnitModel:
+    """One unit of data for the effective sample size, and where its size comes from."""
+
+    likelihood: str
+    unit_sd: float | None
+    unit: str
+    source: str
+
+
+def unit_model(row: Measure, scale: str, definition: Definition) -> UnitModel:
+    """One unit of new data: a participant or unit of exposure for counts (Fisher information
+    of one observation), else one observation of sd `output.unit_sd` on the analysis scale (or
+    the measure's default, with its source)."""
+    if row.count is not None and scale in (row.scale, row.natural_scale):
+        return UnitModel(
+            row.count.likelihood,
+            None,
+            definition["output.ess_unit"] or row.count.unit,
+            "Fisher information of one observation",
+        )
+    unit_sd = definition["output.unit_sd"]
+    if unit_sd is not None:
+        return UnitModel(
+            "normal",
+            unit_sd,
+            definition["output.ess_unit"] or "participants",
+            "output.unit_sd of the definition",
+        )
+    if row.unit_sd is None:
+        raise InputError(
+            f"the effective sample size of a {row.name} prior needs output.unit_sd (the sd of "
+            "one unit's observation, in the outcome's units)",
+            field="output.unit_sd",
+        )
+    return UnitModel(
+        "normal",
+        row.unit_sd.sd,
+        definition["output.ess_unit"] or row.unit_sd.unit,
+        row.unit_sd.source,
+    )
 
 
 def _digest(
@@ -298,18 +353,32 @@ def _digest(
     return hashlib.sha256(json.dumps(doc, sort_keys=True, ensure_ascii=True).encode()).hexdigest()
 
 
+@dataclass(frozen=True)
+class _Run:
+    """Steps 2-6 at one global power weight."""
+
+    pooled: Any
+    discounts: tuple[Discount, ...]
+    fitted: Fitted
+    components: tuple[Component, ...]
+    model: UnitModel
+    ess: dict[str, Any]
+    robust: dict[str, Any] | None
+
+
 def _at_power(
     definition: Definition,
     entries: Sequence[EntryLike],
     ratings: Sequence[tuple[Rating, ...]],
     global_power: float,
-    measure: str,
-) -> dict[str, Any]:
-    """One pass of steps 2-6 at a given global power weight."""
+    row: Measure,
+    retracted_ok: bool,
+) -> _Run:
     from registry.priors.ess import ess_all
-    from registry.priors.update import unit_information_component, with_vague_component
+    from registry.priors.update import vague_component, with_vague_component
 
-    discounts = _discounts(ratings, definition, global_power)
+    discounts = tuple(_discounts(ratings, definition, global_power))
+    model_sd = definition["output.unit_sd"]
     pooled = pool_entries(
         entries,
         method=definition["pool.method"],
@@ -317,95 +386,128 @@ def _at_power(
         tau_prior=definition["pool.tau_prior"],
         mu_prior=definition["pool.mu_prior"],
         discounts=discounts,
+        unit_sd=model_sd,
+        include_retracted=retracted_ok,
     )
-    x, density, closed = _grid(pooled, definition, len(entries))
-    components, scale, fit = _fit_family(
-        x, density, closed, definition["output.family"], measure, entries[0].scale
-    )
-    model = data_model(measure, scale, definition)
-    notes = []
+    target = _target(pooled, definition, len(entries))
+    fitted = _fit_family(target, definition, row, row.scale)
+    model = unit_model(row, fitted.scale, definition)
+    components = fitted.components
+    robust = None
     weight = definition["discount.robust_weight"]
     if weight > 0:
-        informative = Prior("informative", 0, "", scale, components)
-        family = components[0].family if components[0].family in ("beta", "gamma") else "normal"
-        vague = unit_information_component(
-            informative.mean(), model["unit_sd"], family, scale, likelihood=model["likelihood"]
+        vague = vague_component(
+            Prior.candidate(fitted.scale, components),
+            definition["discount.robust_component"],
+            likelihood=model.likelihood,
+            unit_sd=model.unit_sd,
         )
-        components = with_vague_component(components, vague, weight)
-        notes.append(
-            f"robust mixture: a vague component of weight {weight} worth one unit "
-            f"of data ({model['unit']}; a unit-information prior, Schmidli et al. "
-            "2014)"
+        components = with_vague_component(components, vague.component, weight)
+        alone = ess_all(
+            Prior.candidate(fitted.scale, (vague.component,)),
+            unit_sd=model.unit_sd,
+            unit=model.unit,
+            likelihood=model.likelihood,
         )
-    prior = Prior("candidate", 0, "", scale, components)
+        robust = {
+            "weight": weight,
+            "component": vague.component.to_dict(),
+            "description": vague.description,
+            "ess": alone["variance_match"],
+            "unit": model.unit,
+        }
     ess = ess_all(
-        prior, unit_sd=model["unit_sd"], unit=model["unit"], likelihood=model["likelihood"]
+        Prior.candidate(fitted.scale, components),
+        unit_sd=model.unit_sd,
+        unit=model.unit,
+        likelihood=model.likelihood,
     )
-    return {
-        "pooled": pooled,
-        "discounts": discounts,
-        "components": components,
-        "scale": scale,
-        "fit": fit,
-        "model": model,
-        "ess": ess,
-        "notes": notes,
-    }
+    return _Run(pooled, discounts, fitted, components, model, ess, robust)
 
 
-def construct(definition: Definition, entries: Sequence[EntryLike]) -> Construction:
-    """Build the prior's components and lineage from entries (in order) and a definition."""
+def construct(
+    definition: Definition, entries: Sequence[EntryLike], *, rebuild: bool = False
+) -> Construction:
+    """Build the prior's components and lineage from entries (in order) and a definition.
+
+    `rebuild` is for verifying a stored version from exactly the revisions it used: entries
+    whose source has since been retracted are then kept (the version is reported stale).
+    """
     from registry.priors.ess import information_shares, solve_power_for_cap
-    from registry.priors.selection import check_selection
 
-    measure, _ = check_selection(entries)
+    row = check_selection(entries)
     ratings = [rate_entry(e, definition) for e in entries]
     digest = _digest(definition, entries, ratings)
     global_power = definition["discount.global_power"]
-    run = _at_power(definition, entries, ratings, global_power, measure)
+    retracted_ok = rebuild or definition["select.include_retracted"]
+    run = _at_power(definition, entries, ratings, global_power, row, retracted_ok)
     cap = definition["discount.ess_cap"]
-    notes = list(run["notes"])
-    if cap is not None and run["ess"]["elir"] is not None and run["ess"]["elir"] > cap:
-        factor = solve_power_for_cap(
-            lambda a: _at_power(definition, entries, ratings, global_power * a, measure)["ess"][
-                "elir"
-            ],
-            cap,
+    notes = []
+    headline = run.ess[ESS_METHOD]
+    if cap is not None and headline is None:
+        raise InputError(
+            f"the ESS cap is met on the {ESS_METHOD} effective sample size, which does not "
+            f"exist for this prior ({run.ess['notes'].get(ESS_METHOD, 'no value')}); remove "
+            "discount.ess_cap, or change the output family or the robust component",
+            field="discount.ess_cap",
         )
-        global_power *= factor
-        run = _at_power(definition, entries, ratings, global_power, measure)
-        notes = [
-            *run["notes"],
-            f"global power weight {global_power:.6g} solved so that the "
-            f"effective sample size (ELIR) meets the cap {cap:g}",
-        ]
-    pooled = run["pooled"]
-    tau2 = pooled.tau2 or 0.0
+    if cap is not None and headline > cap:
+
+        def ess_at(a: float) -> float:
+            value = _at_power(
+                definition, entries, ratings, global_power * a, row, retracted_ok
+            ).ess[ESS_METHOD]
+            if value is None:
+                raise InputError(
+                    f"at global power weight {global_power * a:.4g} the {ESS_METHOD} ESS does "
+                    "not exist, so the cap cannot be solved; remove discount.ess_cap",
+                    field="discount.ess_cap",
+                )
+            return value
+
+        global_power *= solve_power_for_cap(ess_at, cap)
+        run = _at_power(definition, entries, ratings, global_power, row, retracted_ok)
+        notes.append(
+            f"global power weight {global_power:.6g} solved so that the effective sample size "
+            f"({ESS_METHOD}) meets the cap {cap:g}"
+        )
+    if run.robust is not None:
+        notes.append(
+            f"robust mixture (Schmidli et al. 2014): a vague component of weight "
+            f"{run.robust['weight']:g}, {run.robust['description']}"
+        )
+    notes.extend(run.fitted.warnings)
+    tau2 = run.pooled.tau2 or 0.0
     shares = information_shares(
         1.0 / (e.se**2 / d.power + d.bias_var + tau2)
-        for e, d in zip(entries, run["discounts"], strict=True)
+        for e, d in zip(entries, run.discounts, strict=True)
     )
     rated = tuple(
         Rated(e, r, d, s)
-        for e, r, d, s in zip(entries, ratings, run["discounts"], shares, strict=True)
+        for e, r, d, s in zip(entries, ratings, run.discounts, shares, strict=True)
     )
-    result = {
-        "scale": run["scale"],
-        "components": [c.to_dict() for c in run["components"]],
-        "ess": {
-            "value": run["ess"]["elir"],
-            "method": "elir",
-            **run["ess"],
-            "unit_source": run["model"]["source"],
-        },
-        "pooled": pooled.to_dict(),
-        "fit": run["fit"],
-        "global_power": global_power,
-        "target": definition["target"],
-        "notes": notes,
-        "plausible": _plausible(definition, run["scale"], run["components"], entries[0].scale),
+    ess = {
+        "value": run.ess[ESS_METHOD],
+        "method": ESS_METHOD,
+        **run.ess,
+        "unit_source": run.model.source,
     }
-    return Construction(digest, run["scale"], tuple(run["components"]), rated, result)
+    result = BuildResult(
+        scale=run.fitted.scale,
+        measure=row.name,
+        components=run.components,
+        ess=ess,
+        pooled=run.pooled.to_dict(),
+        fit=run.fitted.fit,
+        global_power=global_power,
+        target=definition["target"],
+        notes=tuple(notes),
+        warnings=run.fitted.warnings,
+        plausible=_plausible(definition, run.fitted.scale, run.components, row.scale),
+        robust=run.robust,
+        include_retracted=definition["select.include_retracted"],
+    )
+    return Construction(digest, result, rated)
 
 
 def _plausible(
@@ -417,7 +519,7 @@ def _plausible(
     bounds = definition["output.plausible"]
     if bounds is None:
         return None
-    prior = Prior("candidate", 0, "", scale, tuple(components))
+    prior = Prior.candidate(scale, tuple(components))
     lo, hi = bounds
     if scale == analysis_scale and scale != "identity":
         lo, hi = to_analysis(scale, lo), to_analysis(scale, hi)

@@ -14,19 +14,22 @@ Layout (every key but `name`, `parameter` and `select.quantity` is optional):
     sources = ["inv-aldren2016"]           # only these sources
     include = [21]                         # these entry ids too, whatever the filters
     exclude = [7]
+    include_retracted = false              # entries of retracted sources: left out unless true
     [select.studies]                       # which entry stands for a study reported twice
     "INV-TRIAL-ALDREN" = 2
 
     [pool]
     method = "bayes"                       # common, dl, pm, reml, ml, bayes
     likelihood = "exact"                   # normal | exact (count likelihood, bayes only)
-    tau_prior = "half-normal:0.5"
+    tau_prior = "half-normal:0.5"          # default on log and logit scales only; elsewhere
+                                           # give it in the outcome's units or K*unit_sd
     mu_prior = "flat"
 
     [discount]
     mechanism = "both"                     # power | bias | both | none
     global_power = 1.0                     # a power weight on every entry
     robust_weight = 0.2                    # weight of a vague component (Schmidli et al.)
+    robust_component = "auto"              # or FAMILY:PARAMS, e.g. "beta:1,1" (see README)
     ess_cap = 100                          # met by solving for the global power weight
     [discount.mapping.population.serious]  # change the default mapping where you disagree
     power = 0.5
@@ -43,6 +46,7 @@ Layout (every key but `name`, `parameter` and `select.quantity` is optional):
     family = "auto"       # auto, normal, student_t, mixture, beta, gamma or lognormal
     ess_unit = "person-years"
     unit_sd = 2.0                          # sd of one unit's observation on the analysis scale
+    max_components = 4                     # most components a mixture approximation may have
     plausible = [0.3, 2.5]                 # a range on the natural scale, for a check
 
 Errors name the key and its line: `FILE, line N, 'discount.robust_weight': must be ...`.
@@ -118,6 +122,9 @@ SETTINGS: dict[str, Setting] = {
     "select.sources": Setting([], _strings, "a list of citation keys"),
     "select.include": Setting([], _ids, "a list of entry ids"),
     "select.exclude": Setting([], _ids, "a list of entry ids"),
+    "select.include_retracted": Setting(
+        False, lambda v: isinstance(v, bool), "true or false (entries of retracted sources)"
+    ),
     "select.studies": Setting(
         {},
         lambda v: isinstance(v, dict) and all(isinstance(x, int) for x in v.values()),
@@ -127,13 +134,14 @@ SETTINGS: dict[str, Setting] = {
     "pool.likelihood": Setting(
         "normal", lambda v: v in ("normal", "exact"), "one of normal, exact"
     ),
-    "pool.tau_prior": Setting("half-normal:0.5", _text, "a tau prior such as half-normal:0.5"),
+    "pool.tau_prior": Setting(None, _text, "a tau prior such as half-normal:0.5"),
     "pool.mu_prior": Setting("flat", _text, "flat or normal:MEAN,SD"),
     "discount.mechanism": Setting(
         "both", lambda v: v in MECHANISMS, f"one of {', '.join(MECHANISMS)}"
     ),
     "discount.global_power": Setting(1.0, _number(0, 1, open_lo=True), "a number in (0, 1]"),
     "discount.robust_weight": Setting(0.0, _number(0, 0.99), "a number in [0, 0.99]"),
+    "discount.robust_component": Setting("auto", _text, "auto or FAMILY:PARAMS such as beta:1,1"),
     "discount.ess_cap": Setting(None, _number(0, float("inf"), open_lo=True), "a positive number"),
     "discount.mapping": Setting({}, lambda v: isinstance(v, dict), "a table of domains"),
     "rule": Setting([], lambda v: isinstance(v, list), "an array of [[rule]] tables"),
@@ -141,6 +149,11 @@ SETTINGS: dict[str, Setting] = {
     "output.family": Setting("auto", lambda v: v in FAMILIES, f"one of {', '.join(FAMILIES)}"),
     "output.ess_unit": Setting(None, _text, "a unit such as participants"),
     "output.unit_sd": Setting(None, _number(0, float("inf"), open_lo=True), "a positive number"),
+    "output.max_components": Setting(
+        4,
+        lambda v: isinstance(v, int) and not isinstance(v, bool) and 1 <= v <= 10,
+        "a whole number from 1 to 10",
+    ),
     "output.plausible": Setting(
         None,
         lambda v: (
@@ -308,5 +321,8 @@ def load_definition(path: str | Path) -> Definition:
 
 
 def definition_from_canonical(doc: Mapping[str, Any]) -> Definition:
-    """The stored canonical form back into a Definition (for rebuilding)."""
-    return Definition(dict(doc), "<stored definition>")
+    """The stored canonical form back into a Definition (for rebuilding); keys added since it
+    was stored take their defaults."""
+    values = {key: setting.default for key, setting in SETTINGS.items()}
+    values.update(doc)
+    return Definition(values, "<stored definition>")

@@ -54,7 +54,7 @@ from scipy import integrate, optimize, special
 from registry.errors import InputError, NumericalError
 from registry.priors.value import Component, Prior
 
-METHODS = ("moment", "morita", "elir")
+METHODS = ("variance_match", "curvature_at_mean", "expected_information")
 LIKELIHOODS = ("normal", "binomial", "poisson")
 
 # analysis scales each data model accepts, and the support a prior on that scale must have
@@ -310,7 +310,7 @@ def _moment(prior: Prior, model: DataModel) -> tuple[float, dict[str, Any]]:
     if not math.isfinite(v):
         raise NumericalError(
             "the prior has no finite variance (a Student-t with df <= 2?), "
-            "so moment matching is undefined; use method='elir'"
+            "so moment matching is undefined; use method='expected_information'"
         )
     if model.scale == "probability":
         value = m * (1.0 - m) / v - 1.0
@@ -331,7 +331,7 @@ def _morita(prior: Prior, model: DataModel) -> tuple[float, dict[str, Any]]:
         raise NumericalError(
             "the prior has no finite mean (a Student-t with df <= 1?), so "
             "the method of Morita et al. has no point to work at; use "
-            "method='elir'"
+            "method='expected_information'"
         )
     d_p = _curvature_on_scale(prior, x_bar)
     d_0 = _vague_limit_curvature(prior.components[0].support, x_bar)
@@ -351,7 +351,7 @@ def _elir(prior: Prior, model: DataModel) -> tuple[float, dict[str, Any]]:
         raise NumericalError(
             "the expected local information ratio diverges for a Student-t prior under a "
             f"{model.likelihood} likelihood (its tails outweigh the vanishing unit "
-            "information); use method='moment' or approximate the prior by normals"
+            "information); use method='variance_match' or approximate the prior by normals"
         )
     components = prior.components
 
@@ -392,7 +392,7 @@ def _elir(prior: Prior, model: DataModel) -> tuple[float, dict[str, Any]]:
         raise NumericalError(
             f"the quadrature for the expected local information ratio did "
             f"not settle (estimate {total:.6g}, error {err:.2g}); try "
-            "method='moment' or a mixture with fewer, wider components"
+            "method='variance_match' or a mixture with fewer, wider components"
         )
     parameter = {
         "normal": "value on the analysis scale",
@@ -403,9 +403,9 @@ def _elir(prior: Prior, model: DataModel) -> tuple[float, dict[str, Any]]:
 
 
 _METHOD_FUNCTIONS: dict[str, Callable[[Prior, DataModel], tuple[float, dict[str, Any]]]] = {
-    "moment": _moment,
-    "morita": _morita,
-    "elir": _elir,
+    "variance_match": _moment,
+    "curvature_at_mean": _morita,
+    "expected_information": _elir,
 }
 
 
@@ -438,8 +438,8 @@ def ess_all(
     unit: str | None = None,
     likelihood: str | None = None,
 ) -> dict[str, Any]:
-    """Every method's ESS with the unit: {"unit", "likelihood", "unit_sd", "moment",
-    "morita", "elir", "notes"}.
+    """Every method's ESS with the unit: {"unit", "likelihood", "unit_sd", "variance_match",
+    "curvature_at_mean", "expected_information", "notes"}.
 
     A method that cannot give a number for this prior has value None and its reason under
     "notes"; a method whose value carries a caveat has the caveat there too.

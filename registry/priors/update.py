@@ -2,45 +2,34 @@
 
 Robust mixture (Schmidli, Gsteiger, Roychoudhury, O'Hagan, Spiegelhalter & Neuenschwander
 2014, Biometrics 70:1023): p(theta) = (1 - w) p_informative(theta) + w p_vague(theta). The
-vague component defaults to a unit-information prior, one unit's worth of information
-centred on the informative prior's mean (see `unit_information_component`).
+vague component carries a small, fixed amount of information that does not depend on the unit
+in which exposure or the outcome was recorded (see `vague_component`).
 
-Updating a mixture of conjugate components with data y gives a mixture of the updated
-components, with weights w_j' proportional to w_j m_j(y), m_j the marginal likelihood of y
-under component j (common practice for conjugate mixtures; used by Schmidli et al. 2014).
-Weights are computed in log space and normalised with log-sum-exp. Terms of m_j(y) that are
-the same for every component (binomial coefficients, y!) cancel and are left out.
+Updating a mixture of conjugate components with data gives a mixture of the updated
+components, with weights w_j' proportional to w_j m_j(data), m_j the marginal likelihood under
+component j (common practice for conjugate mixtures; used by Schmidli et al. 2014). Weights
+are computed in log space and normalised with log-sum-exp. Terms of m_j that are the same for
+every component (binomial coefficients, y!) cancel and are left out.
 """
 
 from __future__ import annotations
 
 import math
-from collections.abc import Iterable, Sequence
-
-import numpy as np
-from scipy import special, stats
+from collections.abc import Callable, Iterable
+from dataclasses import dataclass
 
 from registry.errors import InputError
-from registry.priors.ess import data_model
-from registry.priors.value import Component
+from registry.values.families import Beta, Family, Gamma, Normal, family
+from registry.values.prior import Component, Prior
 
 
-def _components(
-    components: Iterable[Component], family: str | None = None
-) -> tuple[Component, ...]:
+def _components(components: Iterable[Component]) -> tuple[Component, ...]:
     out = tuple(components)
     if not out:
         raise InputError("a prior needs at least one component", field="components")
     total = math.fsum(c.weight for c in out)
     if abs(total - 1.0) > 1e-9:
         raise InputError(f"component weights must sum to 1, got {total}", field="weight")
-    if family is not None:
-        for c in out:
-            if c.family != family:
-                raise InputError(
-                    f"this update is conjugate for {family} components only, got {c.family}",
-                    field="family",
-                )
     return out
 
 
@@ -64,137 +53,164 @@ def with_vague_component(
     if weight == 0:
         return informative
     return (
-        *(Component(c.family, c.params, (1.0 - weight) * c.weight) for c in informative),
-        Component(vague.family, vague.params, weight),
+        *(c.reweighted((1.0 - weight) * c.weight) for c in informative),
+        vague.reweighted(weight),
     )
 
 
-def unit_information_component(
-    prior_mean: float,
-    unit_sd: float | None,
-    family: str,
-    scale: str,
-    *,
-    likelihood: str | None = None,
-) -> Component:
-    """The default vague component: a prior worth one unit of data, at `prior_mean`.
+@dataclass(frozen=True)
+class Vague:
+    """The robust mixture's vague component and, in words, how much information it carries."""
 
-    - normal on an analysis scale: normal(mean, s_u), with s_u = 1/sqrt(i_F(mean)) for one
-      unit of the data model (`registry.priors.ess.data_model`): `unit_sd` for normal data,
-      1/sqrt(p(1-p)) at p = expit(mean) on the logit scale, 1/sqrt(lambda) at
-      lambda = exp(mean) on the log scale of a rate;
-    - beta on the probability scale: Beta(m, 1 - m), so a + b = 1 and its mean is m;
-    - gamma on the rate scale: shape m and rate 1 (one unit of exposure), so its mean is m.
+    component: Component
+    description: str
 
-    Each has an effective sample size of one unit by moment matching (a unit-information
-    prior in the sense of Kass & Wasserman 1995, JASA 90:928, recalled from memory).
-    """
-    if not math.isfinite(prior_mean):
-        raise InputError(f"the prior mean must be finite, got {prior_mean}", field="mean")
-    if family == "normal":
-        model = data_model(scale, unit_sd=unit_sd, likelihood=likelihood)
-        sd = 1.0 / math.sqrt(float(model.information(prior_mean)))
-        return Component("normal", {"loc": prior_mean, "scale": sd})
-    if family == "beta":
-        if scale != "probability" or not 0 < prior_mean < 1:
-            raise InputError(
-                "a beta unit-information component needs the probability scale "
-                f"and a mean in (0, 1); got {scale}, {prior_mean}",
-                field="mean",
-            )
-        return Component("beta", {"a": prior_mean, "b": 1.0 - prior_mean})
-    if family == "gamma":
-        if scale != "rate" or prior_mean <= 0:
-            raise InputError(
-                "a gamma unit-information component needs the rate scale and a "
-                f"positive mean; got {scale}, {prior_mean}",
-                field="mean",
-            )
-        return Component("gamma", {"a": prior_mean, "scale": 1.0})
-    raise InputError(
-        f"no unit-information component for family {family!r}; use normal, beta or gamma",
-        field="family",
+
+def _expit(x: float) -> float:
+    return 1.0 / (1.0 + math.exp(-x))
+
+
+# One unit of data on an analysis scale, by likelihood: the sd of a normal that carries it at
+# the prior mean m, and its name. The units do not depend on how exposure or the outcome was
+# recorded: one participant (binomial, Fisher information p(1-p) for logit p), one expected
+# event (Poisson; the information about log lambda in exposure E is lambda E, so one expected
+# event gives information 1), one observation of sd unit_sd (normal data).
+_ONE_UNIT: dict[str, tuple[Callable[[float, float | None], float], str]] = {
+    "binomial": (lambda m, _sd: 1.0 / math.sqrt(_expit(m) * _expit(-m)), "one participant"),
+    "poisson": (lambda _m, _sd: 1.0, "one expected event"),
+    "normal": (lambda _m, sd: float(sd), "one observation of the unit sd"),
+}
+
+
+def _beta_default(_mean: float) -> Vague:
+    return Vague(
+        Component.of(Beta(1.0, 1.0)),
+        "uniform Beta(1, 1), worth 2 participants by variance matching (a + b = 2)",
     )
 
 
-def _reweighted(
-    components: Sequence[Component],
-    updated: Sequence[dict[str, float]],
-    log_marginals: Sequence[float],
-    family: str,
-) -> tuple[Component, ...]:
-    log_w = np.array(
-        [math.log(c.weight) + lm for c, lm in zip(components, log_marginals, strict=True)]
+def _gamma_default(mean: float) -> Vague:
+    return Vague(
+        Component.of(Gamma(1.0, mean)),
+        f"exponential with the prior's mean {mean:.4g} (gamma shape 1): the information of one "
+        f"expected event, worth {1.0 / mean:.4g} units of exposure by variance matching",
     )
-    weights = np.exp(log_w - special.logsumexp(log_w))
-    # a component whose posterior weight underflows to zero carries no posterior mass
-    keep = [j for j, w in enumerate(weights) if w > 0]
-    total = math.fsum(float(weights[j]) for j in keep)
-    return tuple(Component(family, updated[j], float(weights[j]) / total) for j in keep)
 
 
-def update_normal(components: Iterable[Component], y: float, se: float) -> tuple[Component, ...]:
-    """Posterior of a normal mixture after y ~ N(theta, se^2).
+# Natural-scale conjugate families get a weakly informative default of their own; every other
+# prior gets a normal worth one unit of data at its mean.
+_NATURAL_DEFAULTS: dict[str, Callable[[float], Vague]] = {
+    Beta.name: _beta_default,
+    Gamma.name: _gamma_default,
+}
 
-    Component j, N(m_j, s_j^2), becomes N((m_j/s_j^2 + y/se^2) / P_j, 1/P_j) with
-    P_j = 1/s_j^2 + 1/se^2; its weight is proportional to w_j N(y; m_j, s_j^2 + se^2).
+VAGUE_FORMS = "auto, or FAMILY:P1,P2 with scipy-style parameters (e.g. beta:1,1)"
+
+
+def vague_component(
+    informative: Prior, spec: str = "auto", *, likelihood: str, unit_sd: float | None = None
+) -> Vague:
+    """The robust mixture's vague component for `informative`.
+
+    "auto" (the default):
+    - a beta prior (a probability): the uniform Beta(1, 1), a weakly informative shape with no
+      spike at either end (common practice);
+    - a gamma prior (a rate): the exponential Gamma(1, scale = m) with the prior's mean m, the
+      information of one expected event (so multiplying every exposure by 1,000 and dividing
+      the rate by 1,000 gives the same prior in the new unit);
+    - a prior on an analysis scale: N(m, s_1^2), one unit of data at the prior mean m (see
+      `_ONE_UNIT`; a unit-information prior in the sense of Kass & Wasserman 1995, JASA
+      90:928, recalled from memory).
+    Otherwise `spec` names a family and its parameters in scipy's order, e.g. "beta:1,1".
     """
-    comps = _components(components, "normal")
-    if not (math.isfinite(y) and math.isfinite(se) and se > 0):
-        raise InputError(f"need a finite y and a positive se, got {y}, {se}", field="se")
-    updated, log_marg = [], []
-    for c in comps:
-        m, s = c.params["loc"], c.params["scale"]
-        precision = 1.0 / s**2 + 1.0 / se**2
-        updated.append(
-            {"loc": (m / s**2 + y / se**2) / precision, "scale": 1.0 / math.sqrt(precision)}
-        )
-        log_marg.append(float(stats.norm.logpdf(y, m, math.sqrt(s**2 + se**2))))
-    return _reweighted(comps, updated, log_marg, "normal")
-
-
-def update_beta(components: Iterable[Component], events: float, n: float) -> tuple[Component, ...]:
-    """Posterior of a beta mixture after `events` of `n` (binomial).
-
-    Beta(a_j, b_j) becomes Beta(a_j + x, b_j + n - x); its weight is proportional to
-    w_j B(a_j + x, b_j + n - x) / B(a_j, b_j), the beta-binomial marginal without the
-    binomial coefficient. Non-integer counts (power-discounted data) are accepted.
-    """
-    comps = _components(components, "beta")
-    if not (math.isfinite(n) and n > 0 and 0 <= events <= n):
-        raise InputError(f"need 0 <= events <= n and n > 0, got {events} of {n}", field="events")
-    updated, log_marg = [], []
-    for c in comps:
-        a, b = c.params["a"], c.params["b"]
-        updated.append({"a": a + events, "b": b + n - events})
-        log_marg.append(float(special.betaln(a + events, b + n - events) - special.betaln(a, b)))
-    return _reweighted(comps, updated, log_marg, "beta")
-
-
-def update_gamma(
-    components: Iterable[Component], events: float, exposure: float
-) -> tuple[Component, ...]:
-    """Posterior of a gamma mixture after `events` in `exposure` (Poisson, rate per unit).
-
-    Gamma(shape a_j, rate b_j) becomes Gamma(a_j + x, b_j + E); its weight is proportional
-    to w_j Gamma(a_j + x) / Gamma(a_j) b_j^a_j / (b_j + E)^(a_j + x), the negative-binomial
-    marginal without the factor E^x / x!.
-    """
-    comps = _components(components, "gamma")
-    if not (math.isfinite(exposure) and exposure > 0 and math.isfinite(events) and events >= 0):
+    mean = informative.mean()
+    if not math.isfinite(mean):
         raise InputError(
-            f"need events >= 0 and exposure > 0, got {events} in {exposure}", field="events"
+            "the informative prior has no finite mean, so the vague component cannot be "
+            "centred on it; give discount.robust_component as FAMILY:PARAMS",
+            field="discount.robust_component",
         )
-    updated, log_marg = [], []
-    for c in comps:
-        a, rate = c.params["a"], 1.0 / c.params["scale"]
-        updated.append({"a": a + events, "scale": 1.0 / (rate + exposure)})
-        log_marg.append(
-            float(
-                special.gammaln(a + events)
-                - special.gammaln(a)
-                + a * math.log(rate)
-                - (a + events) * math.log(rate + exposure)
-            )
+    text = spec.strip()
+    if text != "auto":
+        dist = _parse_family(text)
+        return Vague(Component.of(dist), f"{text}, as the definition gives it")
+    natural = _NATURAL_DEFAULTS.get(informative.components[0].family)
+    if natural is not None:
+        return natural(mean)
+    if likelihood == "normal" and unit_sd is None:
+        raise InputError(
+            "the robust component on this scale is one observation of the unit sd; give "
+            "output.unit_sd, or discount.robust_component as FAMILY:PARAMS",
+            field="output.unit_sd",
         )
-    return _reweighted(comps, updated, log_marg, "gamma")
+    sd_of, unit = _ONE_UNIT[likelihood]
+    sd = sd_of(mean, unit_sd)
+    return Vague(
+        Component.of(Normal(mean, sd)),
+        f"normal({mean:.4g}, {sd:.4g}) at the prior's mean: {unit}",
+    )
+
+
+def _parse_family(text: str) -> Family:
+    name, sep, rest = text.partition(":")
+    cls = family(name.strip()) if sep else None
+    if cls is None:
+        raise InputError(f"use {VAGUE_FORMS}, got {text!r}", field="discount.robust_component")
+    try:
+        values = [float(v) for v in rest.split(",")]
+    except ValueError:
+        raise InputError(
+            f"cannot read the numbers in {text!r}; use {VAGUE_FORMS}",
+            field="discount.robust_component",
+        ) from None
+    names = cls.parameter_names()
+    if len(values) != len(names):
+        raise InputError(
+            f"{cls.name} takes {', '.join(names)} (in that order), got {rest!r}",
+            field="discount.robust_component",
+        )
+    return cls(**dict(zip(names, values, strict=True)))
+
+
+# What each likelihood's data must be: (first, second) -> message or "".
+_DATA_RULES: dict[str, Callable[[float, float], str]] = {
+    "normal": lambda y, se: (
+        "" if math.isfinite(y) and math.isfinite(se) and se > 0 else "a finite y and se > 0"
+    ),
+    "binomial": lambda x, n: "" if math.isfinite(n) and n > 0 and 0 <= x <= n else "0 <= x <= n",
+    "poisson": lambda x, e: (
+        "" if math.isfinite(e) and e > 0 and math.isfinite(x) and x >= 0 else "x >= 0, E > 0"
+    ),
+}
+
+
+def update(components: Iterable[Component], first: float, second: float) -> tuple[Component, ...]:
+    """The posterior mixture after one observation of the components' conjugate likelihood.
+
+    (first, second) is (y, se) for normal components, (events, n) for beta and (events,
+    exposure) for gamma; each component's `Family.update` gives its posterior and marginal.
+    Non-integer counts (power-discounted data) are accepted.
+    """
+    comps = _components(components)
+    likelihoods = {c.dist.conjugate for c in comps}
+    if len(likelihoods) != 1 or None in likelihoods:
+        raise InputError(
+            "a closed-form update needs components of one conjugate family, got "
+            + ", ".join(sorted({c.family for c in comps})),
+            field="family",
+        )
+    (likelihood,) = likelihoods
+    problem = _DATA_RULES[likelihood](first, second)
+    if problem:
+        raise InputError(
+            f"{likelihood} data must have {problem}, got {first}, {second}", field="data"
+        )
+    updated = [c.dist.update(first, second) for c in comps]
+    log_w = [math.log(c.weight) + lm for c, (_, lm) in zip(comps, updated, strict=True)]
+    top = max(log_w)
+    weights = [math.exp(v - top) for v in log_w]
+    total = math.fsum(weights)
+    # a component whose posterior weight underflows to zero carries no posterior mass
+    kept = [(d, w / total) for (d, _), w in zip(updated, weights, strict=True) if w > 0]
+    norm = math.fsum(w for _, w in kept)
+    return tuple(Component.of(d, w / norm) for d, w in kept)

@@ -425,9 +425,17 @@ class Ledger:
         tags: Sequence[str] = (),
         sources: Sequence[str] = (),
         ids: Iterable[int] = (),
+        include_retracted: bool = False,
     ) -> list[EntryView]:
-        """Current revisions of the entries that match every filter given (tags: all of them)."""
+        """Current revisions of the entries that match every filter given (tags: all of them).
+
+        Entries from retracted sources are left out unless `include_retracted` is True.
+        """
         query = _head_revisions()
+        if not include_retracted:
+            query = query.where(
+                EntryRevision.source_id.in_(select(Source.id).where(Source.retracted.is_(False)))
+            )
         if quantity:
             query = query.where(EntryRevision.quantity == quantity)
         if measure:

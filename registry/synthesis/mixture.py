@@ -14,21 +14,26 @@ from the weighted sufficient statistics (mean log p and log(1 - p); mean r and l
 Newton's method on the digamma equations (gamma) or L-BFGS-B on log a, log b (beta). The
 Jacobian of the change of scale is common to all components, so it leaves EM unchanged.
 
-Number of components: BIC = -2 n sum_g w_g log q(x_g) + p log n with the effective sample size
-n = `sample_size` (default 1000: the density is exact, so n is a stated choice, read as "as
-if the predictive were known from 1000 draws"). The smallest BIC is taken unless its
-quantile error exceeds `QUANTILE_ERROR_BOUND`; then the fewest components that meet the bound
-(or, if none does, the one with the smallest error) are taken.
+Number of components: every count from 1 to `max_components` is fitted; the fit taken is the
+one with the FEWEST components that meets every bound (a single family when one is close
+enough), else the one with the smallest quantile error, marked as missing its bound. The
+bounds: the largest quantile error at `ERROR_LEVELS` (0.5% to 99.5%) at most
+`QUANTILE_ERROR_BOUND` of the target's sd, and the variance within `VARIANCE_BOUND`
+(relative) of the target's, so that tails and the information carried are kept; a caller may
+add its own test (the effective sample size of each method, for instance). BIC = -2 n sum_g
+w_g log q(x_g) + p log n with n = `sample_size` (default 1000, a stated choice: the density is
+exact) is reported for each count.
 
 Error: the largest absolute difference between the mixture's and the grid density's
 quantiles at `ERROR_LEVELS`, on the analysis scale, in absolute terms and relative to the grid
-density's sd, and KL(f || q) on the grid.
+density's sd; the ratio of the mixture's variance to the grid density's, both on the grid; and
+KL(f || q) on the grid.
 """
 
 from __future__ import annotations
 
 import math
-from collections.abc import Mapping
+from collections.abc import Callable
 from dataclasses import dataclass
 from typing import Any
 
@@ -36,88 +41,104 @@ import numpy as np
 from scipy import optimize, special, stats
 
 from registry.errors import InputError, NumericalError
-from registry.priors.value import Component
+from registry.values.families import from_canonical
+from registry.values.prior import Component
 
-# The bound the selection enforces: quantile error relative to the target's sd.
+# The bounds a fit must meet: quantile error relative to the target's sd, and the relative
+# difference of the variances.
 QUANTILE_ERROR_BOUND = 0.05
+VARIANCE_BOUND = 0.05
 ERROR_LEVELS = (0.005, 0.01, 0.025, 0.05, 0.1, 0.25, 0.5, 0.75, 0.9, 0.95, 0.975, 0.99, 0.995)
-FAMILIES = ("normal", "beta", "gamma")
 
 _EM_TOL = 1e-9
 _EM_STEPS = 1000
 
 
 @dataclass(frozen=True)
-class MixtureFit:
-    """The chosen mixture, its error, and the criterion for each number of components."""
+class Candidate:
+    """The mixture of one number of components, and how far it is from the target."""
 
     components: tuple[Component, ...]
-    n_components: int
-    error: Mapping[str, float]
-    criterion: Mapping[int, float]
-    criterion_name: str
+    bic: float
+    quantile_error: float
+    quantile_relative: float
+    variance_ratio: float
+    kl: float
+
+    @property
+    def n_components(self) -> int:
+        return len(self.components)
+
+    def within_bounds(self) -> bool:
+        return (
+            self.quantile_relative <= QUANTILE_ERROR_BOUND
+            and abs(self.variance_ratio - 1.0) <= VARIANCE_BOUND
+        )
+
+    def error(self) -> dict[str, float]:
+        return {
+            "quantile": self.quantile_error,
+            "quantile_relative": self.quantile_relative,
+            "variance_ratio": self.variance_ratio,
+            "kl": self.kl,
+        }
+
+
+@dataclass(frozen=True)
+class MixtureFit:
+    """The chosen mixture, whether it meets the bounds, and every candidate tried."""
+
+    chosen: Candidate
+    meets_bounds: bool
+    candidates: tuple[Candidate, ...]
+
+    @property
+    def components(self) -> tuple[Component, ...]:
+        return self.chosen.components
+
+    @property
+    def n_components(self) -> int:
+        return self.chosen.n_components
+
+    @property
+    def error(self) -> dict[str, float]:
+        return self.chosen.error()
 
     def to_dict(self) -> dict[str, Any]:
         return {
             "components": [c.to_dict() for c in self.components],
             "n_components": self.n_components,
-            "error": dict(self.error),
-            "criterion": {str(j): v for j, v in self.criterion.items()},
-            "criterion_name": self.criterion_name,
+            "meets_bounds": self.meets_bounds,
+            "error": self.error,
+            "bic": {str(c.n_components): c.bic for c in self.candidates},
         }
 
 
-def _natural(family: str, x: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    """Points on the component family's scale and log |d natural / d x|."""
-    if family == "normal":
-        return x, np.zeros_like(x)
-    if family == "beta":
-        p = special.expit(x)
-        return p, np.log(p) + np.log1p(-p)
-    r = np.exp(x)
-    return r, x
+def _normal_m_step(t: np.ndarray, w: np.ndarray, _old: np.ndarray) -> np.ndarray:
+    m = w @ t
+    return np.array([m, max(math.sqrt(w @ (t - m) ** 2), 1e-12)])
 
 
-def _logpdf(family: str, params: np.ndarray, t: np.ndarray) -> np.ndarray:
-    """(J, G) log densities of the J components at natural-scale points t."""
-    a, b = params[:, :1], params[:, 1:]
-    if family == "normal":
-        return stats.norm.logpdf(t, a, b)
-    if family == "beta":
-        return stats.beta.logpdf(t, a, b)
-    return stats.gamma.logpdf(t, a, scale=b)
+def _gamma_m_step(t: np.ndarray, w: np.ndarray, _old: np.ndarray) -> np.ndarray:
+    """Shape a solves log a - digamma(a) = log mean - mean log (Newton on log a, from the
+    closed-form start of Minka 2002, recalled); scale = mean / a."""
+    mean, mean_log = w @ t, w @ np.log(t)
+    s = max(math.log(mean) - mean_log, 1e-12)
+    a = (3 - s + math.sqrt((s - 3) ** 2 + 24 * s)) / (12 * s)
+    for _ in range(50):
+        g = math.log(a) - special.digamma(a) - s
+        a_new = a * math.exp(-g / (1 - a * special.polygamma(1, a)))
+        if abs(a_new - a) < 1e-12 * a:
+            return np.array([a_new, mean / a_new])
+        a = a_new
+    return np.array([a, mean / a])
 
 
-def _m_step(family: str, t: np.ndarray, r: np.ndarray, old: np.ndarray) -> np.ndarray:
-    """Weighted maximum likelihood for each component (rows of r are its weights)."""
-    mass = r.sum(axis=1)
-    out = np.empty_like(old)
-    for j in range(r.shape[0]):
-        w = r[j] / mass[j]
-        if family == "normal":
-            m = w @ t
-            out[j] = m, max(math.sqrt(w @ (t - m) ** 2), 1e-12)
-        elif family == "gamma":
-            mean, mean_log = w @ t, w @ np.log(t)
-            # shape a solves log a - digamma(a) = log mean - mean log (Newton on log a)
-            s = max(math.log(mean) - mean_log, 1e-12)
-            a = (3 - s + math.sqrt((s - 3) ** 2 + 24 * s)) / (12 * s)
-            for _ in range(50):
-                g = math.log(a) - special.digamma(a) - s
-                a_new = a * math.exp(-g / (1 - a * special.polygamma(1, a)))
-                if abs(a_new - a) < 1e-12 * a:
-                    a = a_new
-                    break
-                a = a_new
-            out[j] = a, mean / a
-        else:
-            out[j] = _beta_mle(w @ np.log(t), w @ np.log1p(-t), old[j])
-    return out
-
-
-def _beta_mle(s1: float, s2: float, start: np.ndarray) -> np.ndarray:
-    """Solve psi(a) - psi(a + b) = s1, psi(b) - psi(a + b) = s2 by damped Newton steps."""
-    ab = np.array(start, dtype=float)
+def _beta_m_step(t: np.ndarray, w: np.ndarray, old: np.ndarray) -> np.ndarray:
+    """Solve psi(a) - psi(a + b) = mean log p, psi(b) - psi(a + b) = mean log(1 - p) by
+    damped Newton steps."""
+    s1, s2 = w @ np.log(t), w @ np.log1p(-t)
+    ab = np.array(old, dtype=float)
     for _ in range(100):
         a, b = ab
         total = special.digamma(a + b)
@@ -136,23 +157,70 @@ def _beta_mle(s1: float, s2: float, start: np.ndarray) -> np.ndarray:
     return ab
 
 
-def _initial(family: str, t: np.ndarray, w: np.ndarray, j: int) -> np.ndarray:
-    """Components placed at the (i + 1/2)/J quantiles of the target, each a J-th as wide."""
-    cdf = np.cumsum(w)
-    centres = np.interp((np.arange(j) + 0.5) / j, cdf, t)
-    mean = w @ t
-    sd = math.sqrt(w @ (t - mean) ** 2) / j
-    if family == "normal":
-        return np.column_stack([centres, np.full(j, sd)])
-    if family == "gamma":
-        shape = (centres / sd) ** 2
-        return np.column_stack([shape, centres / shape])
+def _normal_start(centres: np.ndarray, sd: float) -> np.ndarray:
+    return np.column_stack([centres, np.full(centres.size, sd)])
+
+
+def _gamma_start(centres: np.ndarray, sd: float) -> np.ndarray:
+    shape = (centres / sd) ** 2
+    return np.column_stack([shape, centres / shape])
+
+
+def _beta_start(centres: np.ndarray, sd: float) -> np.ndarray:
     size = np.maximum(centres * (1 - centres) / sd**2 - 1, 2.0)
     return np.column_stack([centres * size, (1 - centres) * size])
 
 
+@dataclass(frozen=True)
+class _Fitter:
+    """How EM fits one family: its weighted maximum-likelihood M-step and its start."""
+
+    m_step: Callable[[np.ndarray, np.ndarray, np.ndarray], np.ndarray]
+    start: Callable[[np.ndarray, float], np.ndarray]
+
+
+# Families EM can fit; each lives on its own support, reached from the analysis scale by the
+# canonical transform (identity, expit for beta on logit, exp for gamma on log).
+FITTERS: dict[str, _Fitter] = {
+    "normal": _Fitter(_normal_m_step, _normal_start),
+    "beta": _Fitter(_beta_m_step, _beta_start),
+    "gamma": _Fitter(_gamma_m_step, _gamma_start),
+}
+FAMILIES = tuple(FITTERS)
+
+# log |d natural / d x| of the canonical transform, per support, at x and t = natural(x)
+_LOG_JACOBIAN: dict[str, Callable[[np.ndarray, np.ndarray], np.ndarray]] = {
+    "real": lambda x, _t: np.zeros_like(x),
+    "positive": lambda x, _t: x,
+    "unit": lambda _x, t: np.log(t) + np.log1p(-t),
+}
+
+
+def _components(family: str, pi: np.ndarray, params: np.ndarray) -> tuple[Component, ...]:
+    from registry.values.families import family as family_class
+
+    names = family_class(family).parameter_names()
+    return tuple(
+        Component(family, dict(zip(names, map(float, p), strict=True)), float(wt))
+        for wt, p in zip(pi / pi.sum(), params, strict=True)
+    )
+
+
+def _logpdf(family: str, params: np.ndarray, t: np.ndarray) -> np.ndarray:
+    """(J, G) log densities of the J components at natural-scale points t."""
+    from registry.values.families import family as family_class
+
+    names = family_class(family).parameter_names()
+    dist = getattr(stats, family_class(family).scipy_name)
+    return np.stack([dist.logpdf(t, **dict(zip(names, p, strict=True))) for p in params])
+
+
 def _em(family: str, t: np.ndarray, w: np.ndarray, j: int) -> tuple[np.ndarray, np.ndarray, float]:
-    params = _initial(family, t, w, j)
+    fitter = FITTERS[family]
+    cdf = np.cumsum(w)
+    centres = np.interp((np.arange(j) + 0.5) / j, cdf, t)
+    mean = w @ t
+    params = fitter.start(centres, math.sqrt(w @ (t - mean) ** 2) / j)
     log_pi = np.full(j, -math.log(j))
     last = -np.inf
     for _ in range(_EM_STEPS):
@@ -160,8 +228,9 @@ def _em(family: str, t: np.ndarray, w: np.ndarray, j: int) -> tuple[np.ndarray, 
         total = special.logsumexp(joint, axis=0)
         loglik = float(w @ total)
         r = np.exp(joint - total) * w
-        log_pi = np.log(np.maximum(r.sum(axis=1), 1e-300))
-        params = _m_step(family, t, r, params)
+        mass = r.sum(axis=1)
+        log_pi = np.log(np.maximum(mass, 1e-300))
+        params = np.array([fitter.m_step(t, r[i] / mass[i], params[i]) for i in range(j)])
         if abs(loglik - last) < _EM_TOL:
             break
         last = loglik
@@ -174,20 +243,18 @@ def _grid_quantiles(x: np.ndarray, density: np.ndarray, levels: np.ndarray) -> n
     return np.interp(levels, cdf / cdf[-1], x)
 
 
-def _mixture_quantiles(
-    components: tuple[Component, ...], family: str, levels: np.ndarray
-) -> np.ndarray:
+def _mixture_quantiles(components: tuple[Component, ...], levels: np.ndarray) -> np.ndarray:
     """Mixture quantiles on the analysis scale (by root finding on the natural scale)."""
-    frozen = [(c.weight, c.dist.frozen()) for c in components]
+    dists = [(c.weight, c.dist) for c in components]
     out = []
     for q in levels:
-        lo = min(f.ppf(q) for _, f in frozen)
-        hi = max(f.ppf(q) for _, f in frozen)
+        lo = min(float(d.ppf(q)) for _, d in dists)
+        hi = max(float(d.ppf(q)) for _, d in dists)
         value = (
             lo
             if lo == hi
             else optimize.brentq(
-                lambda v, q=q: sum(wt * f.cdf(v) for wt, f in frozen) - q,
+                lambda v, q=q: sum(wt * d.cdf(v) for wt, d in dists) - q,
                 lo,
                 hi,
                 xtol=1e-14,
@@ -195,10 +262,9 @@ def _mixture_quantiles(
             )
         )
         out.append(value)
-    t = np.asarray(out)
-    if family == "beta":
-        return special.logit(t)
-    return np.log(t) if family == "gamma" else t
+    from registry.values.families import to_canonical
+
+    return np.asarray(to_canonical(components[0].support, np.asarray(out)))
 
 
 def fit_mixture(
@@ -207,22 +273,21 @@ def fit_mixture(
     family: str = "normal",
     *,
     max_components: int = 4,
-    criterion: str = "bic",
     sample_size: float = 1000.0,
+    accept: Callable[[Candidate], bool] | None = None,
 ) -> MixtureFit:
-    """Fit a mixture of `family` components to a density tabulated on the analysis scale.
+    """Fit mixtures of `family` components to a density tabulated on the analysis scale.
 
-    x must be increasing and evenly or unevenly spaced; density >= 0 on it (any scale factor).
+    x must be increasing (evenly or unevenly spaced); density >= 0 on it (any scale factor).
     For "beta", x is on the logit scale; for "gamma", on the log scale (see module docstring).
+    `accept` adds a test a candidate must pass besides the module's bounds.
     """
     x = np.asarray(x, dtype=float).ravel()
     f = np.asarray(density, dtype=float).ravel()
-    if family not in FAMILIES:
+    if family not in FITTERS:
         raise InputError(
             f"unknown mixture family {family!r}; one of {', '.join(FAMILIES)}", field="family"
         )
-    if criterion not in ("bic", "aic"):
-        raise InputError("criterion must be bic or aic", field="criterion")
     if (
         x.size < 10
         or x.size != f.size
@@ -238,46 +303,48 @@ def fit_mixture(
         raise InputError("max_components must be between 1 and 10", field="max_components")
     if sample_size <= 1:
         raise InputError("sample_size must be > 1", field="sample_size")
+    from registry.values.families import family as family_class
+
+    support = family_class(family).support
     dx = np.gradient(x)
     w = f * dx
     w = w / w.sum()
-    t, log_jac = _natural(family, x)
+    t = np.asarray(from_canonical(support, x))
+    # log |d natural / d x| (the Jacobian of the canonical transform)
+    log_jac = _LOG_JACOBIAN[support](x, t)
     levels = np.asarray(ERROR_LEVELS)
     target_q = _grid_quantiles(x, f, levels)
     mean = w @ x
-    sd = math.sqrt(w @ (x - mean) ** 2)
-    penalty = math.log(sample_size) if criterion == "bic" else 2.0
-    fits = {}
+    var = float(w @ (x - mean) ** 2)
+    sd = math.sqrt(var)
+    candidates = []
     for j in range(1, max_components + 1):
         pi, params, loglik = _em(family, t, w, j)
         if not np.all(np.isfinite(params)) or np.any(params[:, 1] <= 0):
             raise NumericalError(
                 f"EM for {j} {family} components failed; try fewer components or a finer grid"
             )
-        names = {"normal": ("loc", "scale"), "beta": ("a", "b"), "gamma": ("a", "scale")}[family]
-        comps = tuple(
-            Component(family, dict(zip(names, map(float, p), strict=True)), float(wt))
-            for wt, p in zip(pi / pi.sum(), params, strict=True)
-        )
-        q_err = float(np.max(np.abs(_mixture_quantiles(comps, family, levels) - target_q)))
-        joint = np.log(pi)[:, None] + _logpdf(family, params, t)
-        log_q = special.logsumexp(joint, axis=0) + log_jac
+        comps = _components(family, pi, params)
+        q_err = float(np.max(np.abs(_mixture_quantiles(comps, levels) - target_q)))
+        log_q = special.logsumexp(np.log(pi)[:, None] + _logpdf(family, params, t), axis=0)
+        log_q = log_q + log_jac
+        q_grid = np.exp(log_q) * dx
+        q_grid = q_grid / q_grid.sum()
+        mix_mean = q_grid @ x
         positive = f > 0
         log_f = np.log(f[positive] / (f * dx).sum())
-        kl = float(w[positive] @ (log_f - log_q[positive]))
-        n_params = 3 * j - 1
-        fits[j] = (comps, -2 * sample_size * loglik + penalty * n_params, q_err, kl)
-    scores = {j: v[1] for j, v in fits.items()}
-    best = min(scores, key=scores.__getitem__)
-    bound = QUANTILE_ERROR_BOUND * sd
-    if fits[best][2] > bound:
-        meeting = [j for j in fits if fits[j][2] <= bound]
-        best = min(meeting) if meeting else min(fits, key=lambda j: fits[j][2])
-    comps, _, q_err, kl = fits[best]
-    return MixtureFit(
-        components=comps,
-        n_components=best,
-        error={"quantile": q_err, "quantile_relative": q_err / sd, "kl": kl},
-        criterion=scores,
-        criterion_name=criterion,
-    )
+        candidates.append(
+            Candidate(
+                components=comps,
+                bic=-2 * sample_size * loglik + math.log(sample_size) * (3 * j - 1),
+                quantile_error=q_err,
+                quantile_relative=q_err / sd,
+                variance_ratio=float(q_grid @ (x - mix_mean) ** 2) / var,
+                kl=float(w[positive] @ (log_f - log_q[positive])),
+            )
+        )
+    passing = [c for c in candidates if c.within_bounds() and (accept is None or accept(c))]
+    if passing:
+        return MixtureFit(passing[0], True, tuple(candidates))
+    best = min(candidates, key=lambda c: c.quantile_relative)
+    return MixtureFit(best, False, tuple(candidates))

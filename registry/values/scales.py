@@ -30,6 +30,7 @@ NATURAL_NAME: dict[str, str] = {
 NATURAL_SCALES: dict[str, str] = {
     "probability": "probability, on its natural scale",
     "rate": "event rate (events per unit of exposure), on its natural scale",
+    "ratio": "ratio, on its natural scale",
 }
 # The support a distribution on each scale must have.
 SUPPORT: dict[str, str] = {
@@ -39,6 +40,7 @@ SUPPORT: dict[str, str] = {
     "fisher_z": "real",
     "probability": "unit",
     "rate": "positive",
+    "ratio": "positive",
 }
 
 
