@@ -18,7 +18,7 @@ from scipy import stats
 
 from registry.emit import LANGUAGES, emit, load_json
 from registry.errors import InputError
-from registry.priors.value import Component, EntryUse, Prior
+from registry.values.prior import Component, EntryUse, Prior
 
 CODE_LANGUAGES = ("stan", "jags", "pymc", "numpyro", "brms")
 COMMENT = {"stan": "//", "jags": "#", "pymc": "#", "numpyro": "#", "brms": "#"}

@@ -26,7 +26,7 @@ import pytest
 from test_emit import ALL, SEMANTICS, SINGLES, WORKED, code_lines
 
 from registry.emit import emit
-from registry.priors.value import Prior
+from registry.values.prior import Prior
 
 pytestmark = pytest.mark.clients
 

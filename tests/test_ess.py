@@ -30,7 +30,7 @@ from registry.priors.ess import (
     solve_power_for_cap,
 )
 from registry.priors.update import unit_information_component, update_beta, with_vague_component
-from registry.priors.value import Component, Prior
+from registry.values.prior import Component, Prior
 
 METHODS = ("variance_match", "curvature_at_mean", "expected_information")
 

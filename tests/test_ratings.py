@@ -30,7 +30,7 @@ from registry.priors.ratings import (
     discount_for,
     levels_for,
 )
-from registry.priors.value import Component, Prior
+from registry.values.prior import Component, Prior
 
 
 def _all_best() -> list[Rating]:

@@ -21,10 +21,6 @@ from registry.cli.common import (
     print_json,
 )
 
-# Measures of a level rather than a contrast: a forest plot draws no line of no effect.
-LEVEL_MEASURES = ("proportion", "rate", "mean")
-
-
 def _interval(pair: Any, scale: str) -> str:
     from registry.values.scales import to_natural
 
@@ -119,18 +115,9 @@ def pool(
         include_retracted=include_retracted,
     )
     if plot is not None:
-        from registry.report.forest import forest_plot
+        from registry.report.forest import entries_forest_plot
 
-        written = forest_plot(
-            plot,
-            [e.source for e in entries],
-            [e.y for e in entries],
-            [e.se for e in entries],
-            result,
-            scale=entries[0].scale,
-            title=quantity or None,
-            no_effect_line=entries[0].measure not in LEVEL_MEASURES,
-        )
+        written = entries_forest_plot(plot, entries, result, title=quantity or None)
         err.print(f"forest plot written to {written}")
     if as_json:
         print_json({**result.to_dict(), "entries": [e.id for e in entries]})

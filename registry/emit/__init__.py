@@ -12,7 +12,7 @@ from collections.abc import Callable
 from registry.emit import brms, jags, json_doc, numpyro, pymc, stan
 from registry.emit.names import check_identifier, default_param
 from registry.errors import InputError
-from registry.priors.value import Prior
+from registry.values.prior import Prior
 
 _CODE: dict[str, Callable[[Prior, str], str]] = {
     "stan": stan.render,

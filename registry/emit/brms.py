@@ -12,7 +12,7 @@ from __future__ import annotations
 from registry.emit.common import arguments, comment_block, header, positional
 from registry.emit.stan import FORMS
 from registry.errors import InputError
-from registry.priors.value import Prior
+from registry.values.prior import Prior
 
 
 def render(prior: Prior, name: str) -> str:

@@ -9,7 +9,7 @@ from collections.abc import Callable, Mapping
 from registry import __version__
 from registry.caution import CAUTION
 from registry.emit.names import sanitize
-from registry.priors.value import Component, Prior
+from registry.values.prior import Component, Prior
 from registry.values.measures import MEASURES
 from registry.values.scales import NATURAL_NAME, NATURAL_SCALES, to_natural
 

@@ -25,7 +25,7 @@ from registry.emit.common import (
     positional,
 )
 from registry.emit.names import check_identifier, natural_name
-from registry.priors.value import Prior
+from registry.values.prior import Prior
 
 FORMS: Forms = {
     "normal": ("dnorm", lambda p: {"mu": p["loc"], "tau": p["scale"] ** -2}),

@@ -14,7 +14,7 @@ from typing import Any
 from registry.caution import CAUTION
 from registry.emit.common import meaning
 from registry.errors import InputError
-from registry.priors.value import Prior
+from registry.values.prior import Prior
 
 FORMAT = "priorledger.prior"
 FORMAT_VERSION = 1

@@ -23,7 +23,7 @@ from registry.emit.common import (
     literal,
 )
 from registry.emit.names import natural_name
-from registry.priors.value import Component, Prior
+from registry.values.prior import Component, Prior
 
 FORMS: Forms = {
     "normal": ("dist.Normal", lambda p: {"loc": p["loc"], "scale": p["scale"]}),

@@ -21,7 +21,7 @@ from registry.emit.common import (
     literal,
 )
 from registry.emit.names import natural_name
-from registry.priors.value import Component, Prior
+from registry.values.prior import Component, Prior
 
 FORMS: Forms = {
     "normal": ("pm.Normal", lambda p: {"mu": p["loc"], "sigma": p["scale"]}),

@@ -23,7 +23,7 @@ from registry.emit.common import (
     positional,
 )
 from registry.emit.names import natural_name
-from registry.priors.value import Prior
+from registry.values.prior import Prior
 
 FORMS: Forms = {
     "normal": ("normal", lambda p: {"mu": p["loc"], "sigma": p["scale"]}),

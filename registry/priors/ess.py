@@ -52,7 +52,7 @@ import numpy as np
 from scipy import integrate, optimize, special
 
 from registry.errors import InputError, NumericalError
-from registry.priors.value import Component, Prior
+from registry.values.prior import Component, Prior
 
 METHODS = ("variance_match", "curvature_at_mean", "expected_information")
 LIKELIHOODS = ("normal", "binomial", "poisson")

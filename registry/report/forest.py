@@ -284,3 +284,25 @@ def _round_ticks(scale: str, lo: float, hi: float) -> list[float]:
         fine, coarse = list(_PROBABILITIES), list(_COARSE_PROBABILITIES)
     ticks = [t for t in fine if lo <= t <= hi]
     return ticks if len(ticks) <= 9 else [t for t in coarse if lo <= t <= hi]
+
+
+def entries_forest_plot(
+    path: str | Path, entries: Sequence[Any], result: Any, *, title: str | None = None
+) -> Path:
+    """A forest plot of registry entries (one row per entry, labelled by source) and their
+    pooled result; levels (a rate, a proportion, a mean) get no line of no effect."""
+    from registry.values.measures import measure
+
+    if not entries:
+        raise InputError("no entries to plot", field="entries")
+    row = measure(entries[0].measure)
+    return forest_plot(
+        path,
+        [e.source for e in entries],
+        [e.y for e in entries],
+        [e.se for e in entries],
+        result,
+        scale=row.scale,
+        title=title,
+        no_effect_line=not row.is_level,
+    )

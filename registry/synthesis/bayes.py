@@ -56,7 +56,7 @@ import numpy as np
 from scipy import special, stats
 
 from registry.errors import InputError, NumericalError
-from registry.priors.value import SCALES
+from registry.values.scales import SCALES
 from registry.synthesis.heterogeneity import heterogeneity
 
 QUANTILE_ACCURACY = 1e-5
