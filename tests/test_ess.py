@@ -32,7 +32,7 @@ from registry.priors.ess import (
 from registry.priors.update import unit_information_component, update_beta, with_vague_component
 from registry.priors.value import Component, Prior
 
-METHODS = ("moment", "morita", "elir")
+METHODS = ("variance_match", "curvature_at_mean", "expected_information")
 
 
 def prior(scale: str, *components: Component) -> Prior:
@@ -85,10 +85,12 @@ def test_student_t_prior() -> None:
     nu, s, s_u = 5.0, 0.5, 2.0
     p = prior("identity", Component("student_t", {"df": nu, "loc": 1.0, "scale": s}))
     values = ess_all(p, unit_sd=s_u)
-    assert values["moment"] == pytest.approx(s_u**2 * (nu - 2) / (nu * s**2), rel=1e-9)
-    assert values["morita"] == pytest.approx(s_u**2 * (nu + 1) / (nu * s**2), rel=1e-9)
-    assert values["elir"] == pytest.approx(s_u**2 * (nu + 1) / ((nu + 3) * s**2), rel=1e-6)
-    assert values["elir"] < values["morita"]
+    assert values["variance_match"] == pytest.approx(s_u**2 * (nu - 2) / (nu * s**2), rel=1e-9)
+    assert values["curvature_at_mean"] == pytest.approx(s_u**2 * (nu + 1) / (nu * s**2), rel=1e-9)
+    assert values["expected_information"] == pytest.approx(
+        s_u**2 * (nu + 1) / ((nu + 3) * s**2), rel=1e-6
+    )
+    assert values["expected_information"] < values["curvature_at_mean"]
 
 
 def test_normal_prior_on_logit_scale() -> None:
@@ -99,9 +101,9 @@ def test_normal_prior_on_logit_scale() -> None:
     p = prior("logit", Component("normal", {"loc": mu, "scale": s}))
     values = ess_all(p)
     expected = (2 + math.exp(mu + s * s / 2) + math.exp(-mu + s * s / 2)) / s**2
-    assert values["elir"] == pytest.approx(expected, rel=1e-6)
+    assert values["expected_information"] == pytest.approx(expected, rel=1e-6)
     pm = special.expit(mu)
-    assert values["moment"] == pytest.approx(1 / (pm * (1 - pm) * s * s), rel=1e-9)
+    assert values["variance_match"] == pytest.approx(1 / (pm * (1 - pm) * s * s), rel=1e-9)
 
 
 def test_lognormal_prior_on_a_rate() -> None:
@@ -111,9 +113,11 @@ def test_lognormal_prior_on_a_rate() -> None:
     mu, s = math.log(2.0), 0.3
     p = prior("rate", Component("lognormal", {"s": s, "scale": math.exp(mu)}))
     values = ess_all(p)
-    assert values["elir"] == pytest.approx(math.exp(-mu + s * s / 2) / s**2, rel=1e-6)
+    assert values["expected_information"] == pytest.approx(
+        math.exp(-mu + s * s / 2) / s**2, rel=1e-6
+    )
     m, v = math.exp(mu + s * s / 2), (math.exp(s * s) - 1) * math.exp(2 * mu + s * s)
-    assert values["moment"] == pytest.approx(m / v, rel=1e-9)
+    assert values["variance_match"] == pytest.approx(m / v, rel=1e-9)
 
 
 # --- mixtures -----------------------------------------------------------------------------
@@ -151,7 +155,9 @@ def test_elir_of_mixture_against_direct_quadrature(components: tuple) -> None:
 
     reference = integrate.quad(integrand, -40, 40, points=[-0.2, 0.0, 0.5, 0.8], limit=400)[0]
     p = prior("identity", *components)
-    assert ess(p, method="elir", unit_sd=s_u).value == pytest.approx(reference, rel=1e-5)
+    assert ess(p, method="expected_information", unit_sd=s_u).value == pytest.approx(
+        reference, rel=1e-5
+    )
 
 
 @pytest.mark.parametrize(
@@ -189,7 +195,7 @@ def test_morita_curvature_on_the_prior_scale(scale: str, components: tuple) -> N
         d_0, i_f = -1 / x**2 - 1 / (1 - x) ** 2, 1 / (x * (1 - x))
     else:
         d_0, i_f = -1 / x**2, 1 / x
-    assert ess(p, method="morita").value == pytest.approx((d_p - d_0) / i_f, rel=1e-5)
+    assert ess(p, method="curvature_at_mean").value == pytest.approx((d_p - d_0) / i_f, rel=1e-5)
 
 
 def test_morita_is_zero_where_the_mean_sits_in_a_trough() -> None:
@@ -202,9 +208,9 @@ def test_morita_is_zero_where_the_mean_sits_in_a_trough() -> None:
     )
     assert _curvature_fd(lambda t: float(p.logpdf(np.array([t]))[0]), 0.0, 1e-4) < 0
     values = ess_all(p, unit_sd=1.0)
-    assert values["morita"] == 0.0
-    assert "m = 0" in values["notes"]["morita"]
-    assert values["elir"] > 0
+    assert values["curvature_at_mean"] == 0.0
+    assert "m = 0" in values["notes"]["curvature_at_mean"]
+    assert values["expected_information"] > 0
 
 
 @pytest.mark.parametrize(
@@ -234,11 +240,11 @@ def test_elir_of_robust_mixture_falls_as_vague_weight_rises(
     weight, less information. The ELIR must fall strictly along a grid of weights, from the
     informative component's ESS towards the vague component's one unit."""
     unit_sd = 2.0 if scale == "identity" else None
-    full = ess(prior(scale, informative), method="elir", unit_sd=unit_sd).value
+    full = ess(prior(scale, informative), method="expected_information", unit_sd=unit_sd).value
     values = [
         ess(
             prior(scale, *with_vague_component((informative,), vague, w)),
-            method="elir",
+            method="expected_information",
             unit_sd=unit_sd,
         ).value
         for w in (0.01, 0.1, 0.2, 0.4, 0.6, 0.8, 0.95, 0.999)
@@ -263,37 +269,42 @@ def test_elir_is_predictively_consistent_for_a_beta_mixture() -> None:
     )
     expected_posterior = sum(
         float(pmf[k])
-        * ess(prior("probability", *update_beta(components, k, n)), method="elir").value
+        * ess(
+            prior("probability", *update_beta(components, k, n)), method="expected_information"
+        ).value
         for k in range(n + 1)
     )
-    prior_elir = ess(prior("probability", *components), method="elir").value
+    prior_elir = ess(prior("probability", *components), method="expected_information").value
     assert expected_posterior == pytest.approx(prior_elir + n, rel=1e-5)
 
 
 def test_methods_that_cannot_apply_say_why() -> None:
     p = prior("logit", Component("student_t", {"df": 4.0, "loc": 0.0, "scale": 1.0}))
-    with pytest.raises(NumericalError, match="moment"):
-        ess(p, method="elir")
+    with pytest.raises(NumericalError, match="variance_match"):
+        ess(p, method="expected_information")
     values = ess_all(p)
-    assert values["elir"] is None and "diverges" in values["notes"]["elir"]
-    assert values["moment"] > 0
+    assert (
+        values["expected_information"] is None
+        and "diverges" in values["notes"]["expected_information"]
+    )
+    assert values["variance_match"] > 0
     heavy = prior("identity", Component("student_t", {"df": 2.0, "loc": 0.0, "scale": 1.0}))
-    assert ess_all(heavy, unit_sd=1.0)["moment"] is None
+    assert ess_all(heavy, unit_sd=1.0)["variance_match"] is None
 
 
 def test_data_model_needs_to_be_said_where_the_scale_is_ambiguous() -> None:
     p = prior("log", Component("normal", {"loc": 0.0, "scale": 0.3}))
     with pytest.raises(InputError) as info:
-        ess(p, method="moment")
+        ess(p, method="variance_match")
     assert info.value.field == "unit_sd"
-    assert ess(p, method="moment", likelihood="poisson").unit == "units of exposure"
+    assert ess(p, method="variance_match", likelihood="poisson").unit == "units of exposure"
     with pytest.raises(InputError):
         data_model("probability", unit_sd=1.0)
     with pytest.raises(InputError):
         data_model("rate", likelihood="binomial")
     assert data_model("fisher_z").unit_sd == 1.0
     beta_on_logit = prior("logit", Component("normal", {"loc": 0.0, "scale": 1.0}))
-    assert ess(beta_on_logit, method="moment", unit="patients").unit == "patients"
+    assert ess(beta_on_logit, method="variance_match", unit="patients").unit == "patients"
 
 
 # --- the cap and the shares --------------------------------------------------------------
@@ -331,7 +342,7 @@ def test_cap_on_a_robust_mixture_by_elir() -> None:
         informative = Component("normal", {"loc": 0.0, "scale": 0.1 / math.sqrt(a)})
         return ess(
             prior("identity", *with_vague_component((informative,), vague, 0.2)),
-            method="elir",
+            method="expected_information",
             unit_sd=2.0,
         ).value
 
