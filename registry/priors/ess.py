@@ -60,6 +60,7 @@ it fails, or the quadrature does not reach its stated accuracy, there is no numb
 
 from __future__ import annotations
 
+import itertools
 import math
 import warnings
 from collections.abc import Callable, Iterable, Mapping
@@ -91,19 +92,20 @@ class _Likelihood:
     scales: tuple[str, ...]
     parameter: str
     unit: str
-    information: Callable[[np.ndarray], np.ndarray]
+    log_information: Callable[[np.ndarray], np.ndarray]
     decay: tuple[float, float]
     takes_unit_sd: bool
 
 
-# Fisher information of one Bernoulli trial on logit p is p(1-p), of one unit of exposure of
-# a Poisson process on log lambda is lambda, of one normal observation 1/s_u^2 (handbook).
+# log Fisher information of one unit: a Bernoulli trial on logit p has p(1-p), one unit of
+# exposure of a Poisson process on log lambda has lambda, a normal observation 1/s_u^2
+# (handbook; here for s_u = 1).
 _LIKELIHOODS: dict[str, _Likelihood] = {
     "normal": _Likelihood(
         ("identity", "log", "logit", "fisher_z"),
         "value on the analysis scale",
         "participants",
-        np.ones_like,
+        np.zeros_like,
         (0.0, 0.0),
         True,
     ),
@@ -111,12 +113,12 @@ _LIKELIHOODS: dict[str, _Likelihood] = {
         ("probability", "logit"),
         "logit p",
         "participants",
-        lambda phi: special.expit(phi) * special.expit(-phi),
+        lambda phi: -np.logaddexp(0.0, phi) - np.logaddexp(0.0, -phi),
         (1.0, 1.0),
         False,
     ),
     "poisson": _Likelihood(
-        ("rate", "log"), "log rate", "units of exposure", np.exp, (1.0, -1.0), False
+        ("rate", "log"), "log rate", "units of exposure", np.array, (1.0, -1.0), False
     ),
 }
 LIKELIHOODS = tuple(_LIKELIHOODS)
@@ -161,10 +163,14 @@ class DataModel:
     def _spec(self) -> _Likelihood:
         return _LIKELIHOODS[self.likelihood]
 
+    def log_canonical_information(self, phi: Any) -> Any:
+        """log Fisher information of one unit at the canonical parameter phi."""
+        sd = 1.0 if self.unit_sd is None else self.unit_sd
+        return self._spec.log_information(np.asarray(phi, dtype=float)) - 2.0 * math.log(sd)
+
     def canonical_information(self, phi: Any) -> Any:
         """Fisher information of one unit at the canonical parameter phi."""
-        sd = 1.0 if self.unit_sd is None else self.unit_sd
-        return self._spec.information(np.asarray(phi, dtype=float)) / sd**2
+        return np.exp(self.log_canonical_information(phi))
 
     def information(self, x: Any) -> Any:
         """Fisher information of one unit at x on the prior's scale: i_F(phi) / J(x)^2."""
@@ -407,45 +413,68 @@ def _check_existence(components: tuple[Component, ...], model: DataModel) -> Non
         )
 
 
+def _log_domain_integrand(components: tuple[Component, ...], model: DataModel) -> Any:
+    """phi -> p(phi) i_p(phi) / i_F(phi), summed in log form so that neither the prior's
+    tails nor the vanishing unit information overflow.
+
+    With l_j = log w_j f_j, L = log p and lambda = log i_F, p i_p = -sum_j e^{l_j} h_j -
+    sum_{j<k} e^{l_j + l_k - L} (g_j - g_k)^2 (the responsibility-weighted variance of the
+    gradients written pairwise, which keeps the small cross terms of the tails accurate).
+    """
+    pairs = [(j, k) for j in range(len(components)) for k in range(j + 1, len(components))]
+
+    def integrand(phi: float) -> float:
+        terms = [c.dist.canonical_terms(np.array([phi])) for c in components]
+        log_w = np.array(
+            [math.log(c.weight) + float(t[0][0]) for c, t in zip(components, terms, strict=True)]
+        )
+        if not np.any(np.isfinite(log_w)):
+            return 0.0  # the whole mixture has underflowed this far out
+        g = np.array([float(t[1][0]) for t in terms])
+        h = np.array([float(t[2][0]) for t in terms])
+        log_p = float(special.logsumexp(log_w))
+        log_i = float(model.log_canonical_information(phi))
+        with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+            own = [
+                -np.sign(h[j]) * math.exp(log_w[j] - log_i + math.log(abs(h[j])))
+                for j in range(len(components))
+                if math.isfinite(log_w[j]) and h[j] != 0.0
+            ]
+            cross = [
+                math.exp(log_w[j] + log_w[k] - log_p - log_i + 2.0 * math.log(abs(g[j] - g[k])))
+                for j, k in pairs
+                if math.isfinite(log_w[j] + log_w[k]) and g[j] != g[k]
+            ]
+        return math.fsum(own) - math.fsum(cross)
+
+    return integrand
+
+
 def _mixture_expected_information(
     components: tuple[Component, ...], model: DataModel
 ) -> tuple[float, dict[str, Any]]:
-    """sum_j w_j int_0^1 i_p / i_F at component j's u-quantile, by adaptive quadrature."""
+    """int p(phi) i_p(phi) / i_F(phi) dphi by adaptive quadrature on phi, the line cut at
+    each component's quantiles (where the mixture's curvature changes fast) and its two
+    outer pieces integrated to infinity (quad's transformation to a finite interval)."""
     _check_existence(components, model)
-
-    def ratio(phi: np.ndarray) -> np.ndarray:
-        return _mixture_derivatives(components, phi)[1] / model.canonical_information(phi)
-
+    integrand = _log_domain_integrand(components, model)
+    cuts = sorted(
+        {
+            phi
+            for c in components
+            for q in (1e-6, 1e-3, 0.1, 0.5, 0.9, 1 - 1e-3, 1 - 1e-6)
+            if math.isfinite(phi := c.dist.canonical_ppf(q))
+        }
+    )
+    pieces = [(-math.inf, cuts[0]), *itertools.pairwise(cuts), (cuts[-1], math.inf)]
     total, err = 0.0, 0.0
-    for c in components:
-        dist = c.dist
-
-        def integrand(u: float, c: Component = c) -> float:
-            # clip keeps exp/expit finite where a quantile underflows to a boundary
-            phi = min(max(c.dist.canonical_ppf(u), -700.0), 700.0)
-            return float(ratio(np.array([phi]))[0])
-
-        # where the other components' mass lies, in this component's quantiles: the
-        # curvature of the mixture changes fast there (break points very near 0 or 1 would
-        # only make slivers)
-        breaks = sorted(
-            u
-            for u in {
-                float(dist.cdf(o.dist.ppf(q)))
-                for o in components
-                if o is not c
-                for q in (1e-3, 0.5, 1 - 1e-3)
-            }
-            if 1e-6 < u < 1 - 1e-6
-        )
-        with warnings.catch_warnings():
-            # quad's own warnings are replaced by the error check below
-            warnings.simplefilter("ignore", integrate.IntegrationWarning)
-            value, abserr = integrate.quad(
-                integrand, 0.0, 1.0, points=breaks or None, limit=500, epsabs=1e-9, epsrel=1e-8
-            )
-        total += c.weight * value
-        err += c.weight * abserr
+    with warnings.catch_warnings():
+        # quad's own warnings are replaced by the accuracy check below
+        warnings.simplefilter("ignore", integrate.IntegrationWarning)
+        for lo, hi in pieces:
+            value, abserr = integrate.quad(integrand, lo, hi, limit=500, epsabs=1e-11, epsrel=1e-10)
+            total += value
+            err += abserr
     _check_accuracy(total, err)
     return total, {"quadrature_error": err}
 
