@@ -661,13 +661,16 @@ class CanonicalDensity:
 
 def _tail_remainder(values: np.ndarray, step: float) -> float:
     """What lies beyond the last point of `values` (ordered towards the end), extrapolating
-    |values| exponentially from its last two points; inf where it does not decay."""
-    last, before = abs(float(values[-1])), abs(float(values[-2]))
-    if last == 0.0:
+    |values| exponentially over the last 1% of the points (a baseline long enough to pass
+    over a spline's end effects); inf where it does not decay. Values below 1e-12 of the
+    largest count as zero."""
+    baseline = max(len(values) // 100, 1)
+    last, before = abs(float(values[-1])), abs(float(values[-1 - baseline]))
+    if last <= 1e-12 * float(np.max(np.abs(values))):
         return 0.0
     if before <= last:
         return math.inf
-    return last * step / math.log(before / last)
+    return last * baseline * step / math.log(before / last)
 
 
 def _density_expected_information(
