@@ -391,6 +391,10 @@ PUMP_LIKE = (
 )
 
 
+def _even_betas(*shapes: tuple[float, float]) -> tuple[Component, ...]:
+    return tuple(Component("beta", {"a": a, "b": b}, 1 / len(shapes)) for a, b in shapes)
+
+
 def _beta_terms(phi: np.ndarray, a: float, b: float) -> tuple[np.ndarray, ...]:
     """Density of logit x under Beta(a, b), written out, and its analytic first two
     derivatives (x = expit(phi): f = x^a (1-x)^b / B(a, b))."""
@@ -462,19 +466,13 @@ def test_converging_mixture_matches_the_definition(
         ("rate", PUMP_LIKE, None, {"lower"}),
         (  # second-smallest b below 1: the upper end only
             "probability",
-            (
-                Component("beta", {"a": 5.0, "b": 0.5}, 0.5),
-                Component("beta", {"a": 3.0, "b": 0.9}, 0.5),
-            ),
+            _even_betas((5.0, 0.5), (3.0, 0.9)),
             None,
             {"upper"},
         ),
         (  # second-smallest a below 1: the lower end only
             "probability",
-            (
-                Component("beta", {"a": 0.4, "b": 5.0}, 0.5),
-                Component("beta", {"a": 0.7, "b": 8.0}, 0.5),
-            ),
+            _even_betas((0.4, 5.0), (0.7, 8.0)),
             None,
             {"lower"},
         ),
