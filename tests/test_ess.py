@@ -23,13 +23,16 @@ from scipy import integrate, special, stats
 
 from registry.errors import InputError, NumericalError
 from registry.priors.ess import (
+    CanonicalDensity,
     data_model,
     ess,
     ess_all,
+    ess_of_density,
     information_shares,
+    power_for_ess_cap,
     solve_power_for_cap,
 )
-from registry.priors.update import unit_information_component, update_beta, with_vague_component
+from registry.priors.update import update, with_vague_component
 from registry.values.prior import Component, Prior
 
 METHODS = ("variance_match", "curvature_at_mean", "expected_information")
@@ -87,7 +90,9 @@ def test_student_t_prior() -> None:
     values = ess_all(p, unit_sd=s_u)
     assert values["variance_match"] == pytest.approx(s_u**2 * (nu - 2) / (nu * s**2), rel=1e-9)
     assert values["curvature_at_mean"] == pytest.approx(s_u**2 * (nu + 1) / (nu * s**2), rel=1e-9)
-    assert values["expected_information"] == pytest.approx(s_u**2 * (nu + 1) / ((nu + 3) * s**2), rel=1e-6)
+    assert values["expected_information"] == pytest.approx(
+        s_u**2 * (nu + 1) / ((nu + 3) * s**2), rel=1e-6
+    )
     assert values["expected_information"] < values["curvature_at_mean"]
 
 
@@ -111,7 +116,9 @@ def test_lognormal_prior_on_a_rate() -> None:
     mu, s = math.log(2.0), 0.3
     p = prior("rate", Component("lognormal", {"s": s, "scale": math.exp(mu)}))
     values = ess_all(p)
-    assert values["expected_information"] == pytest.approx(math.exp(-mu + s * s / 2) / s**2, rel=1e-6)
+    assert values["expected_information"] == pytest.approx(
+        math.exp(-mu + s * s / 2) / s**2, rel=1e-6
+    )
     m, v = math.exp(mu + s * s / 2), (math.exp(s * s) - 1) * math.exp(2 * mu + s * s)
     assert values["variance_match"] == pytest.approx(m / v, rel=1e-9)
 
@@ -151,7 +158,9 @@ def test_elir_of_mixture_against_direct_quadrature(components: tuple) -> None:
 
     reference = integrate.quad(integrand, -40, 40, points=[-0.2, 0.0, 0.5, 0.8], limit=400)[0]
     p = prior("identity", *components)
-    assert ess(p, method="expected_information", unit_sd=s_u).value == pytest.approx(reference, rel=1e-5)
+    assert ess(p, method="expected_information", unit_sd=s_u).value == pytest.approx(
+        reference, rel=1e-5
+    )
 
 
 @pytest.mark.parametrize(
@@ -213,17 +222,17 @@ def test_morita_is_zero_where_the_mean_sits_in_a_trough() -> None:
         (
             "probability",
             Component("beta", {"a": 30.0, "b": 70.0}),
-            unit_information_component(0.3, None, "beta", "probability"),
+            Component("beta", {"a": 1.0, "b": 1.0}),  # the default vague component,
         ),
         (
             "identity",
             Component("normal", {"loc": 0.0, "scale": 0.2}),
-            unit_information_component(0.0, 2.0, "normal", "identity"),
+            Component("normal", {"loc": 0.0, "scale": 2.0}),  # one observation of sd 2,
         ),
         (
             "rate",
             Component("gamma", {"a": 50.0, "scale": 0.01}),
-            unit_information_component(0.5, None, "gamma", "rate"),
+            Component("gamma", {"a": 1.0, "scale": 0.5}),  # one expected event,
         ),
     ],
 )
@@ -263,7 +272,7 @@ def test_elir_is_predictively_consistent_for_a_beta_mixture() -> None:
     )
     expected_posterior = sum(
         float(pmf[k])
-        * ess(prior("probability", *update_beta(components, k, n)), method="expected_information").value
+        * ess(prior("probability", *update(components, k, n)), method="expected_information").value
         for k in range(n + 1)
     )
     prior_elir = ess(prior("probability", *components), method="expected_information").value
@@ -275,7 +284,10 @@ def test_methods_that_cannot_apply_say_why() -> None:
     with pytest.raises(NumericalError, match="variance_match"):
         ess(p, method="expected_information")
     values = ess_all(p)
-    assert values["expected_information"] is None and "diverges" in values["notes"]["expected_information"]
+    assert (
+        values["expected_information"] is None
+        and "diverges" in values["notes"]["expected_information"]
+    )
     assert values["variance_match"] > 0
     heavy = prior("identity", Component("student_t", {"df": 2.0, "loc": 0.0, "scale": 1.0}))
     assert ess_all(heavy, unit_sd=1.0)["variance_match"] is None
@@ -325,7 +337,7 @@ def test_cap_is_met_within_one_percent(
 def test_cap_on_a_robust_mixture_by_elir() -> None:
     """The cap met through the ESS of the finished prior: a power weight a on a normal
     summary N(m, se^2) gives N(m, se^2/a), then robustified with 20% vague weight."""
-    vague = unit_information_component(0.0, 2.0, "normal", "identity")
+    vague = Component("normal", {"loc": 0.0, "scale": 2.0})  # one observation of sd 2
 
     def ess_of_power(a: float) -> float:
         informative = Component("normal", {"loc": 0.0, "scale": 0.1 / math.sqrt(a)})
@@ -363,3 +375,237 @@ def test_shares_reject_bad_input() -> None:
     for bad in ([], [0.0, 0.0], [1.0, -0.1], [1.0, math.inf]):
         with pytest.raises(InputError):
             information_shares(bad)
+
+
+# --- existence of the expected information, decided per end --------------------------------
+
+# Invented gamma mixture in the range of the crude pump failure rates x/t of Gaver &
+# O'Muircheartaigh (1987, Technometrics 29:1; data recalled from memory), shaped like a
+# MAP-type prior: both shapes below 1, so the second-smallest rate at log lambda -> -inf is
+# below the Poisson unit information's rate 1.
+PUMP_LIKE = (
+    Component("gamma", {"a": 0.5, "scale": 1 / 0.4}, 0.4),
+    Component("gamma", {"a": 0.8, "scale": 1 / 6.0}, 0.6),
+)
+
+
+def _even_betas(*shapes: tuple[float, float]) -> tuple[Component, ...]:
+    return tuple(Component("beta", {"a": a, "b": b}, 1 / len(shapes)) for a, b in shapes)
+
+
+def _beta_terms(phi: np.ndarray, a: float, b: float) -> tuple[np.ndarray, ...]:
+    """Density of logit x under Beta(a, b), written out, and its analytic first two
+    derivatives (x = expit(phi): f = x^a (1-x)^b / B(a, b))."""
+    x = special.expit(phi)
+    f = np.exp(a * phi - (a + b) * np.logaddexp(0, phi) - special.betaln(a, b))
+    g = a - (a + b) * x
+    return f, f * g, f * (g * g - (a + b) * x * (1 - x))
+
+
+def _gamma_terms(phi: np.ndarray, a: float, rate: float) -> tuple[np.ndarray, ...]:
+    """Density of log x under Gamma(a, rate): f = rate^a e^{a phi - rate e^phi} / Gamma(a)."""
+    lam = np.exp(phi)
+    f = np.exp(a * phi - rate * lam + a * math.log(rate) - special.gammaln(a))
+    g = a - rate * lam
+    return f, f * g, f * (g * g - rate * lam)
+
+
+def _direct_elir(terms: list[tuple[float, tuple]], info, lo: float, hi: float, n: int) -> float:
+    """Neuenschwander et al. (2020)'s definition written out: int p (-(log p)'') / i_F dphi
+    with -(log p)'' = p'^2/p^2 - p''/p from analytic derivatives, by Simpson's rule."""
+    phi = np.linspace(lo, hi, n)
+    p = sum(w * t[0] for w, t in terms)
+    d1 = sum(w * t[1] for w, t in terms)
+    d2 = sum(w * t[2] for w, t in terms)
+    return float(integrate.simpson((d1 * d1 / p - d2) / info(phi), x=phi))
+
+
+@pytest.mark.parametrize(
+    ("scale", "components", "direct", "hi"),
+    [
+        (
+            "probability",
+            (
+                Component("beta", {"a": 3.0, "b": 1.2}, 0.45),
+                Component("beta", {"a": 6.0, "b": 2.5}, 0.55),
+            ),
+            lambda phi: [(0.45, _beta_terms(phi, 3.0, 1.2)), (0.55, _beta_terms(phi, 6.0, 2.5))],
+            40.0,
+        ),
+        (
+            "rate",
+            (
+                Component("gamma", {"a": 1.5, "scale": 1 / 0.4}, 0.3),
+                Component("gamma", {"a": 3.0, "scale": 1 / 6.0}, 0.7),
+            ),
+            lambda phi: [(0.3, _gamma_terms(phi, 1.5, 0.4)), (0.7, _gamma_terms(phi, 3.0, 6.0))],
+            5.0,
+        ),
+    ],
+)
+def test_converging_mixture_matches_the_definition(
+    scale: str, components: tuple, direct, hi: float
+) -> None:
+    """Second-smallest tail rate above the unit information's: the integral exists and
+    matches a dense Simpson quadrature of the definition (Neuenschwander et al. 2020) on
+    phi in [-60, hi], where the neglected tails are below exp(-30)."""
+    info = (
+        (lambda phi: special.expit(phi) * special.expit(-phi)) if scale == "probability" else np.exp
+    )
+    phi = np.linspace(-60, hi, 400_001)
+    reference = _direct_elir(direct(phi), info, -60, hi, 400_001)
+    value = ess_all(prior(scale, *components))["expected_information"]
+    assert value == pytest.approx(reference, rel=1e-6)
+
+
+@pytest.mark.parametrize(
+    ("scale", "components", "likelihood", "ends"),
+    [
+        ("rate", PUMP_LIKE, None, {"lower"}),
+        (  # second-smallest b below 1: the upper end only
+            "probability",
+            _even_betas((5.0, 0.5), (3.0, 0.9)),
+            None,
+            {"upper"},
+        ),
+        (  # second-smallest a below 1: the lower end only
+            "probability",
+            _even_betas((0.4, 5.0), (0.7, 8.0)),
+            None,
+            {"lower"},
+        ),
+        (  # polynomial tails against binomial information: both ends
+            "logit",
+            (Component("student_t", {"df": 4.0, "loc": 0.0, "scale": 1.0}),),
+            None,
+            {"lower", "upper"},
+        ),
+        (  # polynomial tails against Poisson information: only at -inf, where it vanishes
+            "log",
+            (Component("student_t", {"df": 4.0, "loc": 0.0, "scale": 1.0}),),
+            "poisson",
+            {"lower"},
+        ),
+    ],
+)
+def test_divergent_expected_information_is_none_with_the_end(
+    scale: str, components: tuple, likelihood: str | None, ends: set[str]
+) -> None:
+    """The tail analysis in the module docstring (derived; the pump-like prior's quadrature
+    used to report a finite number). None and a reason naming each divergent end."""
+    values = ess_all(prior(scale, *components), likelihood=likelihood)
+    assert values["expected_information"] is None
+    note = values["notes"]["expected_information"]
+    assert "does not exist" in note
+    assert {end for end in ("lower", "upper") if f"{end} end" in note} == ends
+
+
+def test_pump_like_truncated_integral_runs_away() -> None:
+    """Independent evidence of the divergence: the definition, integrated by Simpson's rule
+    on log lambda in [-L, 5], keeps falling as L grows (derived rate exp(-(0.8 - 1) L))."""
+    direct = [(0.4, _gamma_terms), (0.6, _gamma_terms)]
+    params = [(0.5, 0.4), (0.8, 6.0)]
+
+    def truncated(lo: float) -> float:
+        phi = np.linspace(lo, 5, 200_001)
+        terms = [(w, f(phi, *q)) for (w, f), q in zip(direct, params, strict=True)]
+        return _direct_elir(terms, np.exp, lo, 5, 200_001)
+
+    values = [truncated(-length) for length in (20, 40, 60)]
+    assert values[0] > values[1] > values[2]
+    assert values[1] - values[2] > 10 * abs(values[0] - values[1]) / 10 > 1
+
+
+def test_equal_slowest_rates_do_not_count() -> None:
+    """Two betas with the same a = 0.5 < 1: their gradients agree to leading order at
+    logit p -> -inf, so no cross term arises there and the ESS exists (derived)."""
+    p = prior(
+        "probability",
+        Component("beta", {"a": 0.5, "b": 3.0}, 0.5),
+        Component("beta", {"a": 0.5, "b": 6.0}, 0.5),
+    )
+    value = ess_all(p)["expected_information"]
+    phi = np.linspace(-40, 40, 400_001)
+    terms = [(0.5, _beta_terms(phi, 0.5, 3.0)), (0.5, _beta_terms(phi, 0.5, 6.0))]
+    info = lambda t: special.expit(t) * special.expit(-t)  # noqa: E731
+    assert value == pytest.approx(_direct_elir(terms, info, -40, 40, 400_001), rel=1e-5)
+
+
+def test_cap_refuses_an_ess_that_does_not_exist() -> None:
+    """A cap solved against a non-existent ESS would be a wrong number: it is an error
+    naming the method and what to change."""
+    with pytest.raises(NumericalError, match=r"does not exist.*set the cap on an ESS method"):
+        solve_power_for_cap(lambda a: None, 10.0, method="expected_information")
+    with pytest.raises(NumericalError, match=r"expected_information.*lower end.*another method"):
+        power_for_ess_cap(
+            lambda a: ess_all(prior("rate", *PUMP_LIKE)), 0.5, method="expected_information"
+        )
+    with pytest.raises(InputError):
+        power_for_ess_cap(lambda a: {}, 1.0, method="elir")
+
+
+# --- a distribution given by its log density ----------------------------------------------
+
+
+def _on_phi(frozen, support: str):
+    """The log density of phi = x, log x or logit x from a scipy distribution of x, with the
+    Jacobian dx/dphi = 1, x or x(1-x)."""
+    forward = {"real": lambda t: t, "positive": np.exp, "unit": special.expit}[support]
+    log_jac = {
+        "real": np.zeros_like,
+        "positive": lambda t: t,
+        "unit": lambda t: -np.logaddexp(0, t) - np.logaddexp(0, -t),
+    }[support]
+    return lambda t: frozen.logpdf(forward(t)) + log_jac(t)
+
+
+@pytest.mark.parametrize("from_grid", [False, True])
+@pytest.mark.parametrize(
+    ("frozen", "scale", "support", "lo", "hi", "unit_sd", "expected"),
+    [
+        # Morita et al. (2008); Neuenschwander et al. (2020): Beta(a, b) has ESS a + b
+        (stats.beta(3.0, 7.0), "probability", "unit", -25, 20, None, 10.0),
+        # Gamma(shape 4, rate 20) for a Poisson rate: ESS = rate (recalled)
+        (stats.gamma(4.0, scale=1 / 20), "rate", "positive", -14, 1.5, None, 20.0),
+        # N(m, s^2), unit sd s_u = 2: ESS s_u^2 / s^2
+        (stats.norm(0.7, 0.5), "identity", "real", -5, 6.4, 2.0, 16.0),
+    ],
+)
+def test_ess_of_density_matches_the_closed_forms(
+    frozen,
+    scale: str,
+    support: str,
+    lo: float,
+    hi: float,
+    unit_sd,
+    expected: float,
+    from_grid: bool,
+) -> None:
+    logpdf = _on_phi(frozen, support)
+    if from_grid:
+        phi = np.linspace(lo, hi, 20_001)
+        density = CanonicalDensity.from_grid(
+            phi, logpdf(phi), support=support, mean=frozen.mean(), variance=frozen.var()
+        )
+    else:
+        density = CanonicalDensity(logpdf, support, lo, hi, frozen.mean(), frozen.var())
+    values = ess_of_density(density, scale, unit_sd=unit_sd)
+    for method in METHODS:
+        assert values[method] == pytest.approx(expected, rel=1e-4), method
+
+
+def test_ess_of_density_refuses_a_range_that_cuts_the_mass() -> None:
+    frozen = stats.norm(0.0, 1.0)
+    narrow = CanonicalDensity(_on_phi(frozen, "real"), "real", -2.0, 2.0, 0.0, 1.0)
+    values = ess_of_density(narrow, "identity", unit_sd=1.0)
+    assert values["expected_information"] is None
+    assert "widen" in values["notes"]["expected_information"]
+    missing = CanonicalDensity(_on_phi(frozen, "real"), "real", -9.0, 9.0, 0.0, None)
+    assert ess_of_density(missing, "identity", unit_sd=1.0)["variance_match"] is None
+
+
+def test_beta_with_a_small_b_keeps_its_upper_tail() -> None:
+    """Morita et al. (2008); Neuenschwander et al. (2020): Beta(a, b) has ESS a + b, here
+    for a beta with 16% of its mass beyond logit p = 37."""
+    p = prior("probability", Component("beta", {"a": 0.95, "b": 0.05}))
+    assert ess(p, method="expected_information").value == pytest.approx(1.0, rel=1e-4)

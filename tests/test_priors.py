@@ -94,7 +94,9 @@ def test_common_effect_mean_target_is_the_inverse_variance_normal(bcg: Path) -> 
     assert component.params["loc"] == pytest.approx(reference.mean_effect_fe, abs=1e-6)
     assert component.params["scale"] == pytest.approx(reference.sd_eff_w_fe, abs=1e-6)
     # ESS of a normal prior with unit-information sd s_u and sd s is s_u²/s² (moment form).
-    assert built.result.ess["variance_match"] == pytest.approx(4 / reference.sd_eff_w_fe**2, rel=1e-6)
+    assert built.result.ess["variance_match"] == pytest.approx(
+        4 / reference.sd_eff_w_fe**2, rel=1e-6
+    )
     assert sum(r.share for r in built.rated) == pytest.approx(1.0)
 
 

@@ -35,8 +35,6 @@ def unit_information_component(mean: float, unit_sd, family: str, scale: str, li
     ).component
 
 
-
-
 def _quad_posterior(components, log_lik, lo: float, hi: float, points=None):
     """Posterior component weights, mean and variance by quad over theta."""
 
@@ -121,9 +119,7 @@ def test_vague_rate_component_does_not_depend_on_the_unit_of_exposure(factor: fl
     assert other.params["scale"] == pytest.approx(base.params["scale"] / factor, rel=1e-12)
     # the normal on the log rate is the same whatever the unit
     log_base = unit_information_component(math.log(0.8), None, "normal", "log", "poisson")
-    log_other = unit_information_component(
-        math.log(0.8 / factor), None, "normal", "log", "poisson"
-    )
+    log_other = unit_information_component(math.log(0.8 / factor), None, "normal", "log", "poisson")
     assert log_other.params["scale"] == log_base.params["scale"]
 
 

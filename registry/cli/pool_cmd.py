@@ -21,6 +21,7 @@ from registry.cli.common import (
     print_json,
 )
 
+
 def _interval(pair: Any, scale: str) -> str:
     from registry.values.scales import to_natural
 
@@ -74,9 +75,7 @@ def pool(
 
     Example: priorledger pool --quantity falls-rate-control-12m --method bayes --likelihood exact
     """
-    from registry.priors.selection import pool_entries, repeated_studies
-
-    from registry.priors.selection import without_retracted
+    from registry.priors.selection import pool_entries, repeated_studies, without_retracted
 
     entries, left_out = without_retracted(
         ledger(db).entries(

@@ -9,8 +9,8 @@ from collections.abc import Callable, Mapping
 from registry import __version__
 from registry.caution import CAUTION
 from registry.emit.names import sanitize
-from registry.values.prior import Component, Prior
 from registry.values.measures import MEASURES
+from registry.values.prior import Component, Prior
 from registry.values.scales import NATURAL_NAME, NATURAL_SCALES, to_natural
 
 # family -> (the language's function name, the scipy parameters as that language's arguments)

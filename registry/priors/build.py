@@ -24,6 +24,7 @@ import json
 import math
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
+from functools import cached_property
 from typing import Any
 
 from registry.errors import InputError
@@ -31,6 +32,7 @@ from registry.priors.definition import Definition
 from registry.priors.ratings import DOMAINS, Discount, Rating, discount_for, levels_for
 from registry.priors.selection import EntryLike, check_selection, pool_entries
 from registry.values.built import BuildResult
+from registry.values.ess_methods import ESS_METHODS
 from registry.values.families import Beta, Gamma, LogNormal, Normal, StudentT
 from registry.values.measures import Measure
 from registry.values.prior import Component, Prior
@@ -42,6 +44,8 @@ ESS_METHOD = "expected_information"
 # A frequentist predictive target is a Student-t with k - 2 degrees of freedom; below 3 it has
 # no finite variance, so neither the ESS nor the emitted summaries would mean anything.
 MIN_PREDICTIVE_DF = 3
+# A mixture approximation must keep each method's ESS of the exact predictive within this.
+ESS_BOUND = 0.05
 
 
 @dataclass(frozen=True)
@@ -148,6 +152,25 @@ class Target:
     x: Any = field(repr=False)
     density: Any = field(repr=False)
     closed: Component | None = None
+    exact: Any = field(default=None, repr=False)  # the predictive, with pdf and ppf
+
+    def canonical_density(self, support: str) -> Any:
+        """The exact target as a density of the canonical coordinate of `support` (which is the
+        analysis scale itself: logit p for a probability, log of a rate), for its ESS."""
+        import numpy as np
+
+        from registry.priors.ess import CanonicalDensity
+        from registry.values.families import from_canonical
+
+        lo, hi = (float(v) for v in self.exact.ppf([1e-10, 1 - 1e-10]))
+        phi = np.linspace(lo - 2 * self.sd, hi + 2 * self.sd, 6001)
+        dens = np.maximum(self.exact.pdf(phi), 1e-300)
+        w = dens / dens.sum()
+        x = np.asarray(from_canonical(support, phi))
+        mean = float(w @ x)
+        return CanonicalDensity.from_grid(
+            phi, np.log(dens), support=support, mean=mean, variance=float(w @ (x - mean) ** 2)
+        )
 
 
 def _target(pooled: Any, definition: Definition, k: int) -> Target:
@@ -155,7 +178,7 @@ def _target(pooled: Any, definition: Definition, k: int) -> Target:
 
     if getattr(pooled, "predictive", None) is not None and definition["target"] == "predictive":
         p = pooled.predictive
-        return Target(p.mean, p.sd, np.asarray(p.x), np.asarray(p.density))
+        return Target(p.mean, p.sd, np.asarray(p.x), np.asarray(p.density), exact=p)
     if definition["target"] == "mean":
         closed = Component.of(Normal(pooled.mu, pooled.se))
     elif pooled.prediction is None:
@@ -190,7 +213,10 @@ class Fitted:
     warnings: tuple[str, ...] = ()
 
 
-def _closed(target: Target, _row: Measure, scale: str, _cap: int) -> Fitted:
+FitFunction = Callable[[Target, Measure, str, int, Definition], Fitted]
+
+
+def _closed(target: Target, _row: Measure, scale: str, _cap: int, _d: Definition) -> Fitted:
     if target.closed is None:
         raise InputError(
             "this target has no closed form; choose normal, mixture, or the measure's natural "
@@ -200,7 +226,7 @@ def _closed(target: Target, _row: Measure, scale: str, _cap: int) -> Fitted:
     return Fitted((target.closed,), scale, {"method": "closed form"})
 
 
-def _normal(target: Target, _row: Measure, scale: str, _cap: int) -> Fitted:
+def _normal(target: Target, _row: Measure, scale: str, _cap: int, _d: Definition) -> Fitted:
     """Moment matching with the target's exact mean and sd (a normal target is kept exactly)."""
     return Fitted(
         (Component.of(Normal(target.mean, target.sd)),),
@@ -213,7 +239,7 @@ def _normal(target: Target, _row: Measure, scale: str, _cap: int) -> Fitted:
     )
 
 
-def _lognormal(target: Target, row: Measure, scale: str, _cap: int) -> Fitted:
+def _lognormal(target: Target, row: Measure, scale: str, _cap: int, _d: Definition) -> Fitted:
     if scale != "log":
         raise InputError(
             "a log-normal prior needs a quantity on the log scale", field="output.family"
@@ -225,8 +251,8 @@ def _lognormal(target: Target, row: Measure, scale: str, _cap: int) -> Fitted:
     )
 
 
-def _mixture_of(family: str, natural: bool) -> Callable[[Target, Measure, str, int], Fitted]:
-    def fit(target: Target, row: Measure, scale: str, cap: int) -> Fitted:
+def _mixture_of(family: str, natural: bool) -> FitFunction:
+    def fit(target: Target, row: Measure, scale: str, cap: int, definition: Definition) -> Fitted:
         from registry.synthesis.mixture import QUANTILE_ERROR_BOUND, VARIANCE_BOUND, fit_mixture
 
         if natural and row.natural_family != family:
@@ -235,21 +261,26 @@ def _mixture_of(family: str, natural: bool) -> Callable[[Target, Measure, str, i
                 field="output.family",
             )
         if target.closed is not None and target.closed.family == family:
-            return _closed(target, row, scale, cap)
-        mixture = fit_mixture(target.x, target.density, family, max_components=cap)
-        error = mixture.error
+            return _closed(target, row, scale, cap, definition)
+        prior_scale = row.natural_scale if natural else scale
+        check = _EssCheck(target, prior_scale, unit_model(row, prior_scale, definition))
+        mixture = fit_mixture(
+            target.x, target.density, family, max_components=cap, accept=check.accept
+        )
+        error = {**mixture.error, "ess_ratio": check.ratios(mixture.components)}
         warnings = ()
         if not mixture.meets_bounds:
             warnings = (
-                f"the {family} mixture approximation misses its bound with {cap} components at "
+                f"the {family} mixture approximation misses its bounds with {cap} components at "
                 f"most: quantile error {error['quantile_relative']:.3g} of the sd (bound "
                 f"{QUANTILE_ERROR_BOUND:g}), variance ratio {error['variance_ratio']:.4g} "
-                f"(bound 1 ± {VARIANCE_BOUND:g}); raise output.max_components or choose "
-                "another family",
+                f"(bound 1 ± {VARIANCE_BOUND:g}), ESS of each method over the exact "
+                f"predictive's {_ratios_text(error['ess_ratio'])} (bound 1 ± {ESS_BOUND:g}); "
+                "raise output.max_components or choose another family",
             )
         return Fitted(
             mixture.components,
-            row.natural_scale if natural else scale,
+            prior_scale,
             {
                 "method": "EM mixture fit",
                 "components": mixture.n_components,
@@ -263,8 +294,65 @@ def _mixture_of(family: str, natural: bool) -> Callable[[Target, Measure, str, i
     return fit
 
 
+def _ratios_text(ratios: dict[str, float | None]) -> str:
+    return ", ".join(f"{k} {'none' if v is None else format(v, '.4g')}" for k, v in ratios.items())
+
+
+@dataclass(frozen=True)
+class _EssCheck:
+    """Whether a mixture keeps the effective sample size of the exact predictive it stands
+    for: each method's ESS within `ESS_BOUND` (relative), or absent from both."""
+
+    target: Target
+    scale: str
+    model: UnitModel
+
+    def _ess(self, components: tuple[Component, ...]) -> dict[str, Any]:
+        from registry.priors.ess import ess_all
+
+        return ess_all(
+            Prior.candidate(self.scale, components),
+            unit_sd=self.model.unit_sd,
+            unit=self.model.unit,
+            likelihood=self.model.likelihood,
+        )
+
+    @cached_property
+    def exact(self) -> dict[str, Any]:
+        from registry.priors.ess import ess_of_density
+        from registry.values.scales import SUPPORT
+
+        return ess_of_density(
+            self.target.canonical_density(SUPPORT[self.scale]),
+            self.scale,
+            unit_sd=self.model.unit_sd,
+            unit=self.model.unit,
+            likelihood=self.model.likelihood,
+        )
+
+    def ratios(self, components: tuple[Component, ...]) -> dict[str, float | None]:
+        """Mixture ESS over exact ESS by method (None where either does not exist)."""
+        if self.target.exact is None:
+            return {}
+        mixture = self._ess(components)
+        return {
+            m: (None if mixture[m] is None or not self.exact[m] else mixture[m] / self.exact[m])
+            for m in ESS_METHODS
+        }
+
+    def accept(self, candidate: Any) -> bool:
+        if self.target.exact is None:
+            return True
+        mixture = self._ess(candidate.components)
+        return all(
+            (mixture[m] is None) == (self.exact[m] is None)
+            and (mixture[m] is None or abs(mixture[m] / self.exact[m] - 1) <= ESS_BOUND)
+            for m in ESS_METHODS
+        )
+
+
 # output.family -> how the target becomes the prior's components
-_FAMILY_FITS: dict[str, Callable[[Target, Measure, str, int], Fitted]] = {
+_FAMILY_FITS: dict[str, FitFunction] = {
     "closed": _closed,
     StudentT.name: _closed,
     Normal.name: _normal,
@@ -280,7 +368,7 @@ def _fit_family(target: Target, definition: Definition, row: Measure, scale: str
     family = definition["output.family"]
     if family == "auto":
         family = "closed" if target.closed is not None else row.natural_family or "mixture"
-    return _FAMILY_FITS[family](target, row, scale, definition["output.max_components"])
+    return _FAMILY_FITS[family](target, row, scale, definition["output.max_components"], definition)
 
 
 @dataclass(frozen=True)
@@ -433,7 +521,7 @@ def construct(
     `rebuild` is for verifying a stored version from exactly the revisions it used: entries
     whose source has since been retracted are then kept (the version is reported stale).
     """
-    from registry.priors.ess import information_shares, solve_power_for_cap
+    from registry.priors.ess import information_shares, power_for_ess_cap
 
     row = check_selection(entries)
     ratings = [rate_entry(e, definition) for e in entries]
@@ -452,20 +540,13 @@ def construct(
             field="discount.ess_cap",
         )
     if cap is not None and headline > cap:
-
-        def ess_at(a: float) -> float:
-            value = _at_power(
-                definition, entries, ratings, global_power * a, row, retracted_ok
-            ).ess[ESS_METHOD]
-            if value is None:
-                raise InputError(
-                    f"at global power weight {global_power * a:.4g} the {ESS_METHOD} ESS does "
-                    "not exist, so the cap cannot be solved; remove discount.ess_cap",
-                    field="discount.ess_cap",
-                )
-            return value
-
-        global_power *= solve_power_for_cap(ess_at, cap)
+        global_power *= power_for_ess_cap(
+            lambda a: (
+                _at_power(definition, entries, ratings, global_power * a, row, retracted_ok).ess
+            ),
+            cap,
+            method=ESS_METHOD,
+        )
         run = _at_power(definition, entries, ratings, global_power, row, retracted_ok)
         notes.append(
             f"global power weight {global_power:.6g} solved so that the effective sample size "

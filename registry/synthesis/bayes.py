@@ -56,8 +56,8 @@ import numpy as np
 from scipy import special, stats
 
 from registry.errors import InputError, NumericalError
-from registry.values.scales import SCALES
 from registry.synthesis.heterogeneity import heterogeneity
+from registry.values.scales import SCALES
 
 QUANTILE_ACCURACY = 1e-5
 QUANTILE_LEVELS = (0.005, 0.025, 0.05, 0.25, 0.5, 0.75, 0.95, 0.975, 0.995)

@@ -14,15 +14,15 @@ from the weighted sufficient statistics (mean log p and log(1 - p); mean r and l
 Newton's method on the digamma equations (gamma) or L-BFGS-B on log a, log b (beta). The
 Jacobian of the change of scale is common to all components, so it leaves EM unchanged.
 
-Number of components: every count from 1 to `max_components` is fitted; the fit taken is the
-one with the FEWEST components that meets every bound (a single family when one is close
+Number of components: counts from 1 to `max_components` are fitted in turn; the fit taken is
+the one with the FEWEST components that meets every bound (a single family when one is close
 enough), else the one with the smallest quantile error, marked as missing its bound. The
 bounds: the largest quantile error at `ERROR_LEVELS` (0.5% to 99.5%) at most
 `QUANTILE_ERROR_BOUND` of the target's sd, and the variance within `VARIANCE_BOUND`
 (relative) of the target's, so that tails and the information carried are kept; a caller may
 add its own test (the effective sample size of each method, for instance). BIC = -2 n sum_g
 w_g log q(x_g) + p log n with n = `sample_size` (default 1000, a stated choice: the density is
-exact) is reported for each count.
+exact) is reported for each count tried.
 
 Error: the largest absolute difference between the mixture's and the grid density's
 quantiles at `ERROR_LEVELS`, on the analysis scale, in absolute terms and relative to the grid
@@ -333,18 +333,16 @@ def fit_mixture(
         mix_mean = q_grid @ x
         positive = f > 0
         log_f = np.log(f[positive] / (f * dx).sum())
-        candidates.append(
-            Candidate(
-                components=comps,
-                bic=-2 * sample_size * loglik + math.log(sample_size) * (3 * j - 1),
-                quantile_error=q_err,
-                quantile_relative=q_err / sd,
-                variance_ratio=float(q_grid @ (x - mix_mean) ** 2) / var,
-                kl=float(w[positive] @ (log_f - log_q[positive])),
-            )
+        candidate = Candidate(
+            components=comps,
+            bic=-2 * sample_size * loglik + math.log(sample_size) * (3 * j - 1),
+            quantile_error=q_err,
+            quantile_relative=q_err / sd,
+            variance_ratio=float(q_grid @ (x - mix_mean) ** 2) / var,
+            kl=float(w[positive] @ (log_f - log_q[positive])),
         )
-    passing = [c for c in candidates if c.within_bounds() and (accept is None or accept(c))]
-    if passing:
-        return MixtureFit(passing[0], True, tuple(candidates))
+        candidates.append(candidate)
+        if candidate.within_bounds() and (accept is None or accept(candidate)):
+            return MixtureFit(candidate, True, tuple(candidates))
     best = min(candidates, key=lambda c: c.quantile_relative)
     return MixtureFit(best, False, tuple(candidates))

@@ -278,10 +278,11 @@ class Beta(Family):
         phi = np.asarray(phi, dtype=float)
         a, b = self.a, self.b
         x = special.expit(phi)
+        # x (1 - x) as expit(phi) expit(-phi): 1 - x rounds to 0 once phi passes about 37
         return (
             a * phi - (a + b) * np.logaddexp(0.0, phi) - special.betaln(a, b),
             a - (a + b) * x,
-            -(a + b) * x * (1.0 - x),
+            -(a + b) * x * special.expit(-phi),
         )
 
     def canonical_ppf(self, u: float) -> float:
