@@ -7,6 +7,7 @@ from typing import TYPE_CHECKING, Annotated
 
 import typer
 from rich.table import Table
+from rich.text import Text
 
 from registry.cli.common import (
     DbOption,
@@ -40,7 +41,7 @@ def init(db: DbOption = None) -> None:
 
 
 def import_sheet(
-    sheet: Annotated[Path, typer.Argument(help="Extraction sheet, .csv or .xlsx.")],
+    sheet: Annotated[Path, typer.Argument(metavar="FILE", help="Extraction sheet, .csv or .xlsx.")],
     dry_run: Annotated[
         bool, typer.Option("--dry-run", help="Check and report; write nothing.")
     ] = False,
@@ -89,7 +90,9 @@ def sources_list(ctx: typer.Context, db: DbOption = None, as_json: JsonOption = 
 
 @sources_app.command("import")
 def sources_import(
-    file: Annotated[Path, typer.Argument(help="Bibliography, .bib (BibTeX) or .ris (RIS).")],
+    file: Annotated[
+        Path, typer.Argument(metavar="FILE", help="Bibliography, .bib (BibTeX) or .ris (RIS).")
+    ],
     db: DbOption = None,
     as_json: JsonOption = False,
 ) -> None:
@@ -109,8 +112,8 @@ def sources_import(
 
 @sources_app.command("retract")
 def sources_retract(
-    key: Annotated[str, typer.Argument(help="Citation key of the source.")],
-    reason: Annotated[str, typer.Option("--reason", help="Why it is retracted.")],
+    key: Annotated[str, typer.Argument(metavar="KEY", help="Citation key of the source.")],
+    reason: Annotated[str, typer.Option("--reason", metavar="TEXT", help="Why it is retracted.")],
     db: DbOption = None,
     as_json: JsonOption = False,
 ) -> None:
@@ -184,7 +187,9 @@ def entries_show(
         return
     cur = history.current
     out.print(
-        f"[bold]entry {cur.id}[/bold] revision {cur.revision}: {cur.quantity} ({cur.measure})"
+        Text.assemble(
+            (f"entry {cur.id}", "bold"), f" revision {cur.revision}: {cur.quantity} ({cur.measure})"
+        )
     )
     out.print(
         f"  source   {cur.source}{' (RETRACTED)' if cur.retracted else ''}: "
@@ -222,9 +227,15 @@ def revise(
     entry_id: Annotated[int, typer.Argument(metavar="ID", help="Entry id.")],
     set_: Annotated[
         list[str],
-        typer.Option("--set", help="FIELD=VALUE; an empty VALUE clears the field. Repeatable."),
+        typer.Option(
+            "--set",
+            metavar="FIELD=VALUE",
+            help="FIELD=VALUE; an empty VALUE clears the field. Repeatable.",
+        ),
     ],
-    reason: Annotated[str, typer.Option("--reason", help="Why the entry is corrected.")],
+    reason: Annotated[
+        str, typer.Option("--reason", metavar="TEXT", help="Why the entry is corrected.")
+    ],
     db: DbOption = None,
     as_json: JsonOption = False,
 ) -> None:
