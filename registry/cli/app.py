@@ -27,7 +27,6 @@ from registry.errors import LedgerError
 
 app = typer.Typer(
     name="priorledger",
-    help="Keep published evidence with its provenance and build traceable priors from it.",
     no_args_is_help=True,
     pretty_exceptions_enable=False,
     add_completion=False,
@@ -47,7 +46,10 @@ def _root(
         typer.Option("--version", callback=_version, is_eager=True, help="Show the version."),
     ] = None,
 ) -> None:
-    """Keep published evidence with its provenance and build traceable priors from it."""
+    """Keep published evidence with its provenance and build traceable priors from it.
+
+    Example: priorledger demo
+    """
 
 
 app.command("init")(registry_cmds.init)
