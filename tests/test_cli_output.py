@@ -12,6 +12,7 @@ from pathlib import Path
 
 import pytest
 import typer
+from typer.core import TyperGroup
 
 from registry.cli.app import app
 from registry.demo import DEFINITIONS
@@ -191,7 +192,7 @@ def test_a_usage_error_is_one_line_with_exit_2(cli, args: list[str]) -> None:
     assert line.startswith("error: ") and "--help" in line
 
 
-def _command_paths(command: typer.main.TyperGroup, path: tuple[str, ...] = ()):
+def _command_paths(command: TyperGroup, path: tuple[str, ...] = ()):
     yield path
     for name, sub in getattr(command, "commands", {}).items():
         yield from _command_paths(sub, (*path, name))

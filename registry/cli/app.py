@@ -19,7 +19,7 @@ import typer
 
 # Typer carries its own copy of Click; these are the exceptions it raises for bad usage.
 from typer._click.exceptions import ClickException, NoArgsIsHelpError
-from typer.core import TyperArgument
+from typer.core import TyperArgument, TyperCommand, TyperGroup
 
 from registry import __version__
 from registry.cli import demo_cmd, pool_cmd, prior_cmds, registry_cmds
@@ -81,7 +81,7 @@ def _no_type(ctx: typer.Context) -> None:
     return None
 
 
-def _person_metavars(command: typer.main.TyperGroup | typer.main.TyperCommand) -> None:
+def _person_metavars(command: TyperCommand | TyperGroup) -> None:
     """Make `--help` show what a person writes, never a Python type such as `<bool>`.
 
     Typer prints a type beside every parameter: for a flag (including `--help`) that is

@@ -12,6 +12,7 @@ from rich.console import Console, ConsoleDimensions, RenderableType
 from rich.rule import Rule
 from rich.status import Status
 from rich.style import Style
+from rich.table import Column, Table
 from rich.text import Text
 
 DbOption = Annotated[
@@ -80,6 +81,12 @@ err = PlainConsole(stderr=True)
 
 def print_json(doc: Any) -> None:
     sys.stdout.write(json.dumps(doc, indent=2, allow_nan=False) + "\n")
+
+
+def make_table(*headers: str) -> Table:
+    """A table whose long cells fold onto more lines on a terminal instead of being cut
+    with an ellipsis, so that no key, DOI or name is ever shown in part."""
+    return Table(*(Column(header, overflow="fold") for header in headers))
 
 
 def print_verbatim(text: str) -> None:

@@ -6,7 +6,6 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Annotated
 
 import typer
-from rich.table import Table
 from rich.text import Text
 from rich.tree import Tree
 
@@ -16,6 +15,7 @@ from registry.cli.common import (
     JsonOption,
     err,
     ledger,
+    make_table,
     number,
     out,
     print_json,
@@ -104,7 +104,7 @@ def priors(db: DbOption = None, as_json: JsonOption = False) -> None:
     if as_json:
         print_json({"priors": [s.to_dict() for s in stored]})
         return
-    table = Table("prior", "scale", "components", "ess", "entries", "stale", "digest")
+    table = make_table("prior", "scale", "components", "ess", "entries", "stale", "digest")
     for s in stored:
         table.add_row(
             s.prior.label,
@@ -130,7 +130,7 @@ def prior(label: Label, db: DbOption = None, as_json: JsonOption = False) -> Non
         print_json(stored.to_dict())
         return
     show(stored)
-    table = Table("entry", "rev", "weight", "power", "bias sd", "below best")
+    table = make_table("entry", "rev", "weight", "power", "bias sd", "below best")
     for u in stored.uses:
         worse = [f"{r['domain']}: {r['level']}" for r in u["ratings"] if r["rationale"]]
         table.add_row(

@@ -6,7 +6,6 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Annotated
 
 import typer
-from rich.table import Table
 from rich.text import Text
 
 from registry.cli.common import (
@@ -18,6 +17,7 @@ from registry.cli.common import (
     TagOption,
     err,
     ledger,
+    make_table,
     number,
     out,
     print_json,
@@ -25,6 +25,8 @@ from registry.cli.common import (
 from registry.errors import InputError
 
 if TYPE_CHECKING:
+    from rich.table import Table
+
     from registry.storage.ledger import EntryView
 
 sources_app = typer.Typer()
@@ -75,7 +77,7 @@ def sources_list(ctx: typer.Context, db: DbOption = None, as_json: JsonOption = 
     if as_json:
         print_json({"sources": [v.to_dict() for v in views]})
         return
-    table = Table("key", "year", "doi", "entries", "retracted", "citation")
+    table = make_table("key", "year", "doi", "entries", "retracted", "citation")
     for v in views:
         table.add_row(
             v.key,
@@ -155,7 +157,7 @@ def entries_list(
 
 def entries_table(views: list[EntryView]) -> Table:
     """The current entries, one a row; `entries show ID` has the numbers as reported."""
-    table = Table("id", "source", "quantity", "measure", "y", "se", "scale", "conversion")
+    table = make_table("id", "source", "quantity", "measure", "y", "se", "scale", "conversion")
     for v in views:
         flag = " (retracted)" if v.retracted else ""
         table.add_row(
@@ -207,7 +209,7 @@ def entries_show(
         out.print(f"  tags     {'; '.join(cur.tags)}")
     if history.imported_from:
         out.print(f"  imported from {history.imported_from}")
-    table = Table("rev", "when", "reason", "y", "se")
+    table = make_table("rev", "when", "reason", "y", "se")
     for r in history.revisions:
         table.add_row(str(r.revision), r.created_at[:19], r.reason, number(r.y), number(r.se))
     out.print(table)
