@@ -1,4 +1,9 @@
-"""Options and output helpers shared by every command."""
+"""Options and output helpers shared by every command.
+
+Print through these, never `print` or a Console of one's own: `out` (results, stdout) and
+`err` (messages, stderr) show any text as it is and never wrap or cut it when piped;
+`make_table` for tables, `print_verbatim` for code, `print_json` for `--json`.
+"""
 
 from __future__ import annotations
 
