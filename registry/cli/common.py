@@ -1,19 +1,31 @@
-"""Options and output helpers shared by every command."""
+"""Options and output helpers shared by every command.
+
+Print through these, never `print` or a Console of one's own: `out` (results, stdout) and
+`err` (messages, stderr) show any text as it is and never wrap or cut it when piped;
+`make_table` for tables, `print_verbatim` for code, `print_json` for `--json`.
+"""
 
 from __future__ import annotations
 
 import json
 import sys
-from typing import Annotated, Any
+from typing import Annotated, Any, Literal
 
 import typer
-from rich.console import Console
+from rich.cells import cell_len
+from rich.console import Console, ConsoleDimensions, RenderableType
+from rich.rule import Rule
+from rich.status import Status
+from rich.style import Style
+from rich.table import Column, Table
+from rich.text import Text
 
 DbOption = Annotated[
     str | None,
     typer.Option(
         "--db",
         envvar="PRIORLEDGER_DB",
+        metavar="URL_OR_PATH",
         help="Registry: a SQLAlchemy URL or a SQLite file path (default: ./priorledger.db).",
         show_default=False,
     ),
@@ -22,12 +34,69 @@ JsonOption = Annotated[
     bool, typer.Option("--json", help="Print exactly one JSON document on stdout.")
 ]
 
-out = Console(highlight=False)
-err = Console(stderr=True, highlight=False)
+# Width of a console whose output is piped or redirected: wider than any real line, so that
+# nothing is wrapped or cut, yet finite in case some renderable pads to the full width.
+UNBOUNDED = 1_000_000
+# A rule (a horizontal line) has no natural width, so off a terminal it gets this one.
+RULE_WIDTH = 80
+
+
+class PlainConsole(Console):
+    """A Rich console for priorledger's output: text is never read as markup, and output that
+    is not a terminal is never wrapped or truncated.
+
+    Markup, emoji codes and highlighting are off, so a string is printed as it is, wherever
+    it comes from (citations, notes, reasons, keys, tags); style goes in explicitly with
+    `rich.text.Text` (for example `Text.assemble(("entry 3", "bold"), " revision 2")`).
+    When the file is not a terminal the console is unboundedly wide, so table cells are shown
+    in full and long lines stay whole; on a terminal the output is Rich's usual layout.
+    """
+
+    def __init__(self, *, stderr: bool = False) -> None:
+        super().__init__(stderr=stderr, markup=False, emoji=False, highlight=False)
+
+    @property
+    def size(self) -> ConsoleDimensions:
+        size = super().size
+        return size if self.is_terminal else ConsoleDimensions(UNBOUNDED, size.height)
+
+    def rule(
+        self,
+        title: str | Text = "",
+        *,
+        characters: str = "─",
+        style: str | Style = "rule.line",
+        align: Literal["left", "center", "right"] = "center",
+    ) -> None:
+        """A horizontal line with a title; off a terminal, as wide as a page, title in full."""
+        line = Rule(title, characters=characters, style=style, align=align)
+        if self.is_terminal:
+            self.print(line)
+        else:
+            self.print(line, width=max(RULE_WIDTH, cell_len(str(title)) + 6))
+
+    def status(self, status: RenderableType, **kwargs: Any) -> Status:
+        """A spinner; its text is plain (Rich would read a string's brackets as markup)."""
+        return super().status(Text(status) if isinstance(status, str) else status, **kwargs)
+
+
+out = PlainConsole()
+err = PlainConsole(stderr=True)
 
 
 def print_json(doc: Any) -> None:
     sys.stdout.write(json.dumps(doc, indent=2, allow_nan=False) + "\n")
+
+
+def make_table(*headers: str) -> Table:
+    """A table whose long cells fold onto more lines on a terminal instead of being cut
+    with an ellipsis, so that no key, DOI or name is ever shown in part."""
+    return Table(*(Column(header, overflow="fold") for header in headers))
+
+
+def print_verbatim(text: str) -> None:
+    """Print text exactly as it is (emitted code): no markup, wrapping or tab expansion."""
+    out.file.write(text if text.endswith("\n") else text + "\n")
 
 
 def number(value: float | None, digits: int = 4) -> str:
@@ -41,13 +110,22 @@ def ledger(db: str | None):  # type: ignore[no-untyped-def]
 
 
 # Options that select entries, shared by `entries` and `pool`.
-QuantityOption = Annotated[str | None, typer.Option("--quantity", help="Only this quantity.")]
-MeasureOption = Annotated[str | None, typer.Option("--measure", help="Only this measure.")]
+QuantityOption = Annotated[
+    str | None, typer.Option("--quantity", metavar="QUANTITY", help="Only this quantity.")
+]
+MeasureOption = Annotated[
+    str | None, typer.Option("--measure", metavar="MEASURE", help="Only this measure.")
+]
 TagOption = Annotated[
     list[str] | None,
-    typer.Option("--tag", help="Only entries with this tag (repeat for all of several)."),
+    typer.Option(
+        "--tag", metavar="TAG", help="Only entries with this tag (repeat for all of several)."
+    ),
 ]
 SourceOption = Annotated[
-    list[str] | None, typer.Option("--source", help="Only entries from this source (repeatable).")
+    list[str] | None,
+    typer.Option("--source", metavar="KEY", help="Only entries from this source (repeatable)."),
 ]
-IdOption = Annotated[list[int] | None, typer.Option("--id", help="Only this entry (repeatable).")]
+IdOption = Annotated[
+    list[int] | None, typer.Option("--id", metavar="ID", help="Only this entry (repeatable).")
+]

@@ -9,7 +9,7 @@ from typing import Annotated
 import typer
 
 from registry.caution import CAUTION
-from registry.cli.common import err, ledger, out
+from registry.cli.common import err, ledger, out, print_verbatim
 from registry.cli.pool_cmd import render
 from registry.cli.prior_cmds import show, trace_tree
 from registry.cli.registry_cmds import entries_table
@@ -18,11 +18,19 @@ from registry.cli.registry_cmds import entries_table
 def demo(
     db: Annotated[
         str | None,
-        typer.Option("--db", help="Registry to build the demo in (default: a new temporary file)."),
+        typer.Option(
+            "--db",
+            metavar="URL_OR_PATH",
+            help="Registry to build the demo in (default: a new temporary file).",
+        ),
     ] = None,
     out_dir: Annotated[
         Path | None,
-        typer.Option("--out", help="Folder for the demo's figures (default: beside the registry)."),
+        typer.Option(
+            "--out",
+            metavar="FOLDER",
+            help="Folder for the demo's figures (default: beside the registry).",
+        ),
     ] = None,
 ) -> None:
     """Run the whole job on the invented demo scenario: load, pool, build, trace, emit.
@@ -85,5 +93,5 @@ def demo(
     for stored in built:
         for language in ("stan", "pymc"):
             out.rule(f"{stored.prior.label} — {language}")
-            out.print(emit(stored.prior, language), markup=False, highlight=False)
+            print_verbatim(emit(stored.prior, language))
     err.print(CAUTION)

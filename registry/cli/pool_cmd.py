@@ -6,6 +6,7 @@ from pathlib import Path
 from typing import Annotated, Any
 
 import typer
+from rich.text import Text
 
 from registry.cli.common import (
     DbOption,
@@ -40,22 +41,32 @@ def pool(
     tag: TagOption = None,
     source: SourceOption = None,
     entry: IdOption = None,
-    method: Annotated[str, typer.Option(help="common, dl, pm, reml, ml or bayes.")] = "reml",
+    method: Annotated[
+        str, typer.Option(metavar="METHOD", help="common, dl, pm, reml, ml or bayes.")
+    ] = "reml",
     likelihood: Annotated[
-        str, typer.Option(help="normal, or exact (count likelihood; bayes only).")
+        str,
+        typer.Option(metavar="LIKELIHOOD", help="normal, or exact (count likelihood; bayes only)."),
     ] = "normal",
     tau_prior: Annotated[
         str | None,
         typer.Option(
+            metavar="PRIOR",
             help="bayes: half-normal:S, half-t:S,DF or log-normal:M,S (S may be K*unit_sd); "
-            "default half-normal:0.5 on log and logit scales, required on others."
+            "default half-normal:0.5 on log and logit scales, required on others.",
         ),
     ] = None,
     unit_sd: Annotated[
         float | None,
-        typer.Option("--unit-sd", help="bayes: the sd of one unit's observation, for K*unit_sd."),
+        typer.Option(
+            "--unit-sd",
+            metavar="SD",
+            help="bayes: the sd of one unit's observation, for K*unit_sd.",
+        ),
     ] = None,
-    mu_prior: Annotated[str, typer.Option(help="bayes: flat or normal:MEAN,SD.")] = "flat",
+    mu_prior: Annotated[
+        str, typer.Option(metavar="PRIOR", help="bayes: flat or normal:MEAN,SD.")
+    ] = "flat",
     hksj: Annotated[
         bool, typer.Option("--hksj", help="Hartung-Knapp-Sidik-Jonkman interval.")
     ] = False,
@@ -66,7 +77,7 @@ def pool(
         ),
     ] = False,
     plot: Annotated[
-        Path | None, typer.Option(help="Write a forest plot (.png, .pdf or .svg).")
+        Path | None, typer.Option(metavar="FILE", help="Write a forest plot (.png, .pdf or .svg).")
     ] = None,
     db: DbOption = None,
     as_json: JsonOption = False,
@@ -129,7 +140,9 @@ def render(result: Any, scale: str) -> None:
     from registry.values.scales import to_natural
 
     natural = "" if scale == "identity" else f" (natural {to_natural(scale, result.mu):.4g})"
-    out.print(f"[bold]{result.method}[/bold] pooling of k = {result.k} on the {scale} scale")
+    out.print(
+        Text.assemble((result.method, "bold"), f" pooling of k = {result.k} on the {scale} scale")
+    )
     out.print(f"  mu          {result.mu:.4f}{natural}, se {result.se:.4f}")
     out.print(
         f"  95% {'CrI' if result.method == 'bayes' else 'CI '}     {_interval(result.ci, scale)}"

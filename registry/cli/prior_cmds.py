@@ -6,12 +6,21 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Annotated
 
 import typer
-from rich.markup import escape
-from rich.table import Table
+from rich.text import Text
 from rich.tree import Tree
 
 from registry.caution import CAUTION
-from registry.cli.common import DbOption, JsonOption, err, ledger, number, out, print_json
+from registry.cli.common import (
+    DbOption,
+    JsonOption,
+    err,
+    ledger,
+    make_table,
+    number,
+    out,
+    print_json,
+    print_verbatim,
+)
 from registry.errors import CheckFailed
 from registry.values.ess_methods import ESS_METHODS
 
@@ -39,8 +48,11 @@ def _components(stored: StoredPrior) -> str:
 def show(stored: StoredPrior) -> None:
     p = stored.prior
     out.print(
-        f"[bold]{p.label}[/bold]  digest {p.digest[:16]}  "
-        f"{'[red]STALE[/red]' if stored.stale else 'current'}"
+        Text.assemble(
+            (p.label, "bold"),
+            f"  digest {p.digest[:16]}  ",
+            ("STALE", "red") if stored.stale else "current",
+        )
     )
     out.print(f"  parameter   {p.parameter}")
     out.print(f"  scale       {p.scale}")
@@ -53,11 +65,11 @@ def show(stored: StoredPrior) -> None:
     for note in stored.result.notes:
         out.print(f"  note        {note}")
     for reason in stored.stale:
-        out.print(f"  [red]stale[/red]       {reason}")
+        out.print(Text.assemble("  ", ("stale", "red"), f"       {reason}"))
 
 
 def build(
-    file: Annotated[Path, typer.Argument(help="Prior definition file (TOML).")],
+    file: Annotated[Path, typer.Argument(metavar="FILE", help="Prior definition file (TOML).")],
     db: DbOption = None,
     as_json: JsonOption = False,
 ) -> None:
@@ -93,7 +105,7 @@ def priors(db: DbOption = None, as_json: JsonOption = False) -> None:
     if as_json:
         print_json({"priors": [s.to_dict() for s in stored]})
         return
-    table = Table("prior", "scale", "components", "ess", "entries", "stale", "digest")
+    table = make_table("prior", "scale", "components", "ess", "entries", "stale", "digest")
     for s in stored:
         table.add_row(
             s.prior.label,
@@ -119,7 +131,7 @@ def prior(label: Label, db: DbOption = None, as_json: JsonOption = False) -> Non
         print_json(stored.to_dict())
         return
     show(stored)
-    table = Table("entry", "rev", "weight", "power", "bias sd", "below best")
+    table = make_table("entry", "rev", "weight", "power", "bias sd", "below best")
     for u in (use.to_dict() for use in stored.uses):
         worse = [f"{r['domain']}: {r['level']}" for r in u["ratings"] if r["rationale"]]
         table.add_row(
@@ -172,8 +184,10 @@ def trace(label: Label, db: DbOption = None, as_json: JsonOption = False) -> Non
 
 
 def trace_tree(doc: dict, *, short: bool = False) -> Tree:
-    """The trace as a tree; `short` keeps one line an entry. Free text is escaped."""
-    tree = Tree(f"[bold]{doc['prior']}[/bold] ({doc['scale']}) digest {doc['digest'][:16]}")
+    """The trace as a tree; `short` keeps one line an entry."""
+    tree = Tree(
+        Text.assemble((doc["prior"], "bold"), f" ({doc['scale']}) digest {doc['digest'][:16]}")
+    )
     defn = doc["definition"]
     tree.add(
         f"definition: {defn['parameter']}; quantity {defn['select.quantity']}, "
@@ -192,7 +206,7 @@ def trace_tree(doc: dict, *, short: bool = False) -> Tree:
         node = tree.add(head)
         for r in e["ratings"]:
             if r["rationale"]:
-                node.add(escape(f"{r['domain']}: {r['level']} — {r['rationale']} [{r['rule']}]"))
+                node.add(f"{r['domain']}: {r['level']} — {r['rationale']} [{r['rule']}]")
         node.add(
             f"source: {source['citation'] or source['key']} doi:{source['doi'] or '-'}"
             f" at {source['location'] or '-'}"
@@ -207,9 +221,16 @@ def trace_tree(doc: dict, *, short: bool = False) -> Tree:
 
 def emit(
     label: Label,
-    to: Annotated[str, typer.Option("--to", help="stan, pymc, numpyro, brms, jags or json.")],
-    param: Annotated[str | None, typer.Option(help="Parameter name in the code.")] = None,
-    out_file: Annotated[Path | None, typer.Option("--out", help="Write to this file.")] = None,
+    to: Annotated[
+        str,
+        typer.Option("--to", metavar="LANGUAGE", help="stan, pymc, numpyro, brms, jags or json."),
+    ],
+    param: Annotated[
+        str | None, typer.Option(metavar="NAME", help="Parameter name in the code.")
+    ] = None,
+    out_file: Annotated[
+        Path | None, typer.Option("--out", metavar="FILE", help="Write to this file.")
+    ] = None,
     db: DbOption = None,
 ) -> None:
     """Print a prior as code for a modelling language (or as JSON).
@@ -221,7 +242,7 @@ def emit(
 
     code = emit_code(get_prior(ledger(db), label).prior, to, param=param)
     if out_file is None:
-        typer.echo(code, nl=not code.endswith("\n"))
+        print_verbatim(code)
     else:
         out_file.write_text(code)
         err.print(f"written to {out_file}")

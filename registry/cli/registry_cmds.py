@@ -6,7 +6,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Annotated
 
 import typer
-from rich.table import Table
+from rich.text import Text
 
 from registry.cli.common import (
     DbOption,
@@ -17,6 +17,7 @@ from registry.cli.common import (
     TagOption,
     err,
     ledger,
+    make_table,
     number,
     out,
     print_json,
@@ -24,6 +25,8 @@ from registry.cli.common import (
 from registry.errors import InputError
 
 if TYPE_CHECKING:
+    from rich.table import Table
+
     from registry.storage.ledger import EntryView
 
 sources_app = typer.Typer()
@@ -40,7 +43,7 @@ def init(db: DbOption = None) -> None:
 
 
 def import_sheet(
-    sheet: Annotated[Path, typer.Argument(help="Extraction sheet, .csv or .xlsx.")],
+    sheet: Annotated[Path, typer.Argument(metavar="FILE", help="Extraction sheet, .csv or .xlsx.")],
     dry_run: Annotated[
         bool, typer.Option("--dry-run", help="Check and report; write nothing.")
     ] = False,
@@ -74,7 +77,7 @@ def sources_list(ctx: typer.Context, db: DbOption = None, as_json: JsonOption = 
     if as_json:
         print_json({"sources": [v.to_dict() for v in views]})
         return
-    table = Table("key", "year", "doi", "entries", "retracted", "citation")
+    table = make_table("key", "year", "doi", "entries", "retracted", "citation")
     for v in views:
         table.add_row(
             v.key,
@@ -89,7 +92,9 @@ def sources_list(ctx: typer.Context, db: DbOption = None, as_json: JsonOption = 
 
 @sources_app.command("import")
 def sources_import(
-    file: Annotated[Path, typer.Argument(help="Bibliography, .bib (BibTeX) or .ris (RIS).")],
+    file: Annotated[
+        Path, typer.Argument(metavar="FILE", help="Bibliography, .bib (BibTeX) or .ris (RIS).")
+    ],
     db: DbOption = None,
     as_json: JsonOption = False,
 ) -> None:
@@ -109,8 +114,8 @@ def sources_import(
 
 @sources_app.command("retract")
 def sources_retract(
-    key: Annotated[str, typer.Argument(help="Citation key of the source.")],
-    reason: Annotated[str, typer.Option("--reason", help="Why it is retracted.")],
+    key: Annotated[str, typer.Argument(metavar="KEY", help="Citation key of the source.")],
+    reason: Annotated[str, typer.Option("--reason", metavar="TEXT", help="Why it is retracted.")],
     db: DbOption = None,
     as_json: JsonOption = False,
 ) -> None:
@@ -157,7 +162,7 @@ def entries_list(
 
 def entries_table(views: list[EntryView]) -> Table:
     """The current entries, one a row; `entries show ID` has the numbers as reported."""
-    table = Table("id", "source", "quantity", "measure", "y", "se", "scale", "conversion")
+    table = make_table("id", "source", "quantity", "measure", "y", "se", "scale", "conversion")
     for v in views:
         flag = " (retracted)" if v.retracted else ""
         table.add_row(
@@ -189,7 +194,9 @@ def entries_show(
         return
     cur = history.current
     out.print(
-        f"[bold]entry {cur.id}[/bold] revision {cur.revision}: {cur.quantity} ({cur.measure})"
+        Text.assemble(
+            (f"entry {cur.id}", "bold"), f" revision {cur.revision}: {cur.quantity} ({cur.measure})"
+        )
     )
     out.print(
         f"  source   {cur.source}{' (RETRACTED)' if cur.retracted else ''}: "
@@ -207,7 +214,7 @@ def entries_show(
         out.print(f"  tags     {'; '.join(cur.tags)}")
     if history.imported_from:
         out.print(f"  imported from {history.imported_from}")
-    table = Table("rev", "when", "reason", "y", "se")
+    table = make_table("rev", "when", "reason", "y", "se")
     for r in history.revisions:
         table.add_row(str(r.revision), r.created_at[:19], r.reason, number(r.y), number(r.se))
     out.print(table)
@@ -227,9 +234,15 @@ def revise(
     entry_id: Annotated[int, typer.Argument(metavar="ID", help="Entry id.")],
     set_: Annotated[
         list[str],
-        typer.Option("--set", help="FIELD=VALUE; an empty VALUE clears the field. Repeatable."),
+        typer.Option(
+            "--set",
+            metavar="FIELD=VALUE",
+            help="FIELD=VALUE; an empty VALUE clears the field. Repeatable.",
+        ),
     ],
-    reason: Annotated[str, typer.Option("--reason", help="Why the entry is corrected.")],
+    reason: Annotated[
+        str, typer.Option("--reason", metavar="TEXT", help="Why the entry is corrected.")
+    ],
     db: DbOption = None,
     as_json: JsonOption = False,
 ) -> None:
