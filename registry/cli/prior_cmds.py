@@ -62,6 +62,8 @@ def show(stored: StoredPrior) -> None:
         f"  from        {len(stored.uses)} entries; global power weight "
         f"{stored.result.global_power:.4g}"
     )
+    if stored.result.include_retracted:
+        out.print("  retracted   entries of retracted sources are included, as the definition asks")
     for note in stored.result.notes:
         out.print(f"  note        {note}")
     for reason in stored.stale:
@@ -90,6 +92,8 @@ def build(
         if stored.new
         else f"inputs unchanged: {stored.prior.label} has the same digest; nothing stored"
     )
+    for warning in stored.result.warnings:
+        err.print(f"warning: {warning}")
     show(stored)
     err.print(CAUTION)
 
@@ -240,7 +244,10 @@ def emit(
     from registry.emit import emit as emit_code
     from registry.priors.store import get_prior
 
-    code = emit_code(get_prior(ledger(db), label).prior, to, param=param)
+    prior = get_prior(ledger(db), label).prior
+    for reason in prior.stale:
+        err.print(f"warning: {prior.label} is stale: {reason}; rebuild it before use")
+    code = emit_code(prior, to, param=param)
     if out_file is None:
         print_verbatim(code)
     else:

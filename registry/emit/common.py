@@ -85,6 +85,7 @@ def header(prior: Prior, language: str, param: str, natural: str | None) -> list
             f"natural scale ({NATURAL_NAME[prior.scale]}): {natural}, median {nq[1]:.4g}, "
             f"95% interval [{nq[0]:.4g}, {nq[2]:.4g}]"
         )
+    lines += [f"STALE: {reason}; rebuild the prior before using it" for reason in prior.stale]
     lines += [f"trace: priorledger trace {shlex.quote(prior.label)}", CAUTION]
     return [
         part

@@ -29,6 +29,7 @@ def render(prior: Prior) -> str:
         "mean": prior.mean(),
         "sd": prior.var() ** 0.5,
         "quantiles": {str(q): prior.ppf(q) for q in _QUANTILES},
+        "stale": list(prior.stale),
         "caution": CAUTION,
     }
     return json.dumps(doc, indent=2, allow_nan=False) + "\n"

@@ -228,6 +228,33 @@ def _two_by_two_log_or(a: float, b: float, c: float, d: float) -> tuple[float, f
     return math.log(a * d / (b * c)), 1.0 / a + 1.0 / b + 1.0 / c + 1.0 / d
 
 
+def _log_risk_ratio_2x2(a: float, b: float, c: float, d: float) -> tuple[float, float, str]:
+    n_a, n_b = a + b, c + d
+    return math.log((a / n_a) / (c / n_b)), 1 / a - 1 / n_a + 1 / c - 1 / n_b, "log_risk_ratio_2x2"
+
+
+def _risk_difference_2x2(a: float, b: float, c: float, d: float) -> tuple[float, float, str]:
+    p_a, p_b = a / (a + b), c / (c + d)
+    var = p_a * (1 - p_a) / (a + b) + p_b * (1 - p_b) / (c + d)
+    return p_a - p_b, var, "risk_difference_2x2"
+
+
+def _smd_2x2(a: float, b: float, c: float, d: float) -> tuple[float, float, str]:
+    return (
+        *log_odds_ratio_to_smd(*_two_by_two_log_or(a, b, c, d)),
+        "chinn_smd_from_log_odds_ratio",
+    )
+
+
+# measure -> its estimate, variance and conversion name from the cells of a 2x2 table
+_TWO_BY_TWO: dict[str, Callable[[float, float, float, float], tuple[float, float, str]]] = {
+    "odds_ratio": lambda a, b, c, d: (*_two_by_two_log_or(a, b, c, d), "log_odds_ratio_2x2"),
+    "risk_ratio": _log_risk_ratio_2x2,
+    "risk_difference": _risk_difference_2x2,
+    "smd": _smd_2x2,
+}
+
+
 def _from_two_by_two(measure: str, v: Mapping[str, float]) -> Derived:
     """A 2x2 table: events and totals of arm a (experimental) and arm b (comparator).
 
@@ -247,18 +274,7 @@ def _from_two_by_two(measure: str, v: Mapping[str, float]) -> Derived:
     if 0.0 in (a, b, c, d):
         a, b, c, d = a + 0.5, b + 0.5, c + 0.5, d + 0.5
         corr = ("continuity correction 0.5 added to every cell",)
-    n_a, n_b = a + b, c + d
-    p_a, p_b = a / n_a, c / n_b
-    if measure == "risk_ratio":
-        y, var, name = math.log(p_a / p_b), 1 / a - 1 / n_a + 1 / c - 1 / n_b, "log_risk_ratio_2x2"
-    elif measure == "risk_difference":
-        y, var = p_a - p_b, p_a * (1 - p_a) / n_a + p_b * (1 - p_b) / n_b
-        name = "risk_difference_2x2"
-    elif measure == "smd":
-        y, var = log_odds_ratio_to_smd(*_two_by_two_log_or(a, b, c, d))
-        name = "chinn_smd_from_log_odds_ratio"
-    else:
-        (y, var), name = _two_by_two_log_or(a, b, c, d), "log_odds_ratio_2x2"
+    y, var, name = _TWO_BY_TWO[measure](a, b, c, d)
     return _derived(measure, y, var, name, *corr)
 
 
@@ -273,6 +289,38 @@ def _from_rate_counts(measure: str, v: Mapping[str, float]) -> Derived:
     return _derived(measure, y, 1.0 / e_a + 1.0 / e_b, "log_rate_ratio_counts", *corr)
 
 
+def _cohen_d(v: Mapping[str, float]) -> tuple[float, float, float]:
+    """d = D / S_within and var_d (Borenstein et al. 2009 ch. 4), with df = n_a + n_b - 2."""
+    n_a, n_b, sd_a, sd_b = v["n_a"], v["n_b"], v["sd_a"], v["sd_b"]
+    df = n_a + n_b - 2.0
+    d = (v["mean_a"] - v["mean_b"]) / math.sqrt(((n_a - 1) * sd_a**2 + (n_b - 1) * sd_b**2) / df)
+    return d, (n_a + n_b) / (n_a * n_b) + d * d / (2.0 * (n_a + n_b)), df
+
+
+def _hedges_g(v: Mapping[str, float]) -> tuple[float, float, str]:
+    d, var_d, df = _cohen_d(v)
+    j = 1.0 - 3.0 / (4.0 * df - 1.0)
+    return j * d, j * j * var_d, "hedges_g"
+
+
+def _mean_difference(v: Mapping[str, float]) -> tuple[float, float, str]:
+    var = v["sd_a"] ** 2 / v["n_a"] + v["sd_b"] ** 2 / v["n_b"]
+    return v["mean_a"] - v["mean_b"], var, "mean_difference_groups"
+
+
+def _log_odds_ratio_from_groups(v: Mapping[str, float]) -> tuple[float, float, str]:
+    d, var_d, _ = _cohen_d(v)
+    return (*smd_to_log_odds_ratio(d, var_d), "chinn_log_odds_ratio_from_smd")
+
+
+# measure -> its estimate, variance and conversion name from two groups' means and SDs
+_TWO_GROUPS: dict[str, Callable[[Mapping[str, float]], tuple[float, float, str]]] = {
+    "mean_difference": _mean_difference,
+    "smd": _hedges_g,
+    "odds_ratio": _log_odds_ratio_from_groups,
+}
+
+
 def _from_two_groups(measure: str, v: Mapping[str, float]) -> Derived:
     """Means, SDs and sizes of two independent groups (Borenstein et al. 2009 ch. 4).
 
@@ -283,17 +331,7 @@ def _from_two_groups(measure: str, v: Mapping[str, float]) -> Derived:
       J = 1 - 3/(4 df - 1), g = J d, var_g = J² var_d;
     - odds_ratio: ln OR = d π/√3, var = var_d π²/3 from Cohen's d (Chinn 2000).
     """
-    n_a, n_b, sd_a, sd_b = v["n_a"], v["n_b"], v["sd_a"], v["sd_b"]
-    diff = v["mean_a"] - v["mean_b"]
-    if measure == "mean_difference":
-        return _derived(measure, diff, sd_a**2 / n_a + sd_b**2 / n_b, "mean_difference_groups")
-    df = n_a + n_b - 2.0
-    d = diff / math.sqrt(((n_a - 1) * sd_a**2 + (n_b - 1) * sd_b**2) / df)
-    var_d = (n_a + n_b) / (n_a * n_b) + d * d / (2.0 * (n_a + n_b))
-    if measure == "odds_ratio":
-        return _derived(measure, *smd_to_log_odds_ratio(d, var_d), "chinn_log_odds_ratio_from_smd")
-    j = 1.0 - 3.0 / (4.0 * df - 1.0)
-    return _derived(measure, j * d, j * j * var_d, "hedges_g")
+    return _derived(measure, *_TWO_GROUPS[measure](v))
 
 
 def _from_mean_sd(measure: str, v: Mapping[str, float]) -> Derived:
@@ -423,7 +461,7 @@ _FORMS: tuple[_Form, ...] = (  # the order breaks ties: earlier forms are prefer
     _Form(("events", "exposure"), frozenset({"rate"}), _from_events_exposure),
     _Form(
         ("events_a", "total_a", "events_b", "total_b"),
-        frozenset({"odds_ratio", "risk_ratio", "risk_difference", "smd"}),
+        frozenset(_TWO_BY_TWO),
         _from_two_by_two,
     ),
     _Form(
@@ -433,7 +471,7 @@ _FORMS: tuple[_Form, ...] = (  # the order breaks ties: earlier forms are prefer
     ),
     _Form(
         ("mean_a", "sd_a", "n_a", "mean_b", "sd_b", "n_b"),
-        frozenset({"mean_difference", "smd", "odds_ratio"}),
+        frozenset(_TWO_GROUPS),
         _from_two_groups,
     ),
     _Form(("mean", "sd", "n"), frozenset({"mean"}), _from_mean_sd),
