@@ -1,6 +1,7 @@
-"""The invented demo: a registry built from `seed_entries/`, as ordinary import files.
+"""The invented demo: the whole job on the definitions and files in `seed_entries/`.
 
-Everything the demo loads is invented (see seed_entries/README.md).
+Everything the demo loads is invented (see seed_entries/README.md). `run_demo` is what
+`priorledger demo` prints; a notebook user can call it too.
 """
 
 from __future__ import annotations
@@ -8,12 +9,17 @@ from __future__ import annotations
 from dataclasses import dataclass
 from importlib import resources
 from pathlib import Path
+from typing import Any
 
-from registry.storage.ledger import ImportReport, Ledger, SourceImportReport
+from registry.errors import InputError
+from registry.storage.ledger import EntryView, ImportReport, Ledger, SourceImportReport
+from registry.storage.priors import StoredPrior
 
 SHEET = "falls-sheet.csv"
 BIBLIOGRAPHY = "falls-sources.bib"
 DEFINITIONS = ("falls-control-rate.toml", "falls-programme-effect.toml")
+# the definition whose selection (one report per study) the demo pools and plots
+POOLED = "falls-programme-effect.toml"
 
 
 def seed_path(name: str) -> Path:
@@ -31,3 +37,80 @@ def load_seed(ledger: Ledger) -> DemoLoad:
     sources = ledger.import_sources(seed_path(BIBLIOGRAPHY))
     sheet = ledger.import_sheet(seed_path(SHEET))
     return DemoLoad(sources, sheet)
+
+
+@dataclass(frozen=True)
+class DemoRun:
+    """What the demo did: the load, the entries, one pooling with its forest plot, the built
+    priors and their traces."""
+
+    load: DemoLoad
+    entries: tuple[EntryView, ...]
+    pooled_entries: tuple[EntryView, ...]
+    pooled: Any
+    forest: Path
+    built: tuple[StoredPrior, ...]
+    traces: tuple[dict[str, Any], ...]
+
+
+def _demo_keys() -> set[str]:
+    from registry.evidence.bibliography import read_bibliography
+
+    return {r.key for r in read_bibliography(seed_path(BIBLIOGRAPHY))}
+
+
+def check_only_demo(ledger: Ledger) -> None:
+    """Refuse a registry that holds anything but the demo, so that invented priors never land
+    among a group's real ones."""
+    from registry.priors.definition import load_definition
+    from registry.storage.priors import list_versions
+
+    foreign = sorted({s.key for s in ledger.sources()} - _demo_keys())
+    names = {load_definition(seed_path(n)).name for n in DEFINITIONS}
+    foreign += sorted({p.prior.name for p in list_versions(ledger)} - names)
+    if foreign:
+        raise InputError(
+            f"this registry holds more than the invented demo ({', '.join(foreign[:3])}"
+            f"{', ...' if len(foreign) > 3 else ''}); run the demo in a new registry",
+            field="--db",
+        )
+
+
+def _new_file(path: Path) -> Path:
+    """`path`, or the first free `stem-N.suffix` beside it: never a file already there."""
+    candidate, n = path, 1
+    while candidate.exists():
+        n += 1
+        candidate = path.with_name(f"{path.stem}-{n}{path.suffix}")
+    return candidate
+
+
+def run_demo(ledger: Ledger, folder: Path) -> DemoRun:
+    """Load the demo files, pool the programme's effect as its definition selects it, draw the
+    forest plot into `folder`, build both priors and trace them."""
+    from registry.priors.definition import load_definition
+    from registry.priors.selection import pool_entries
+    from registry.priors.store import build_prior, select_entries, trace_prior
+    from registry.report.forest import entries_forest_plot
+
+    check_only_demo(ledger)
+    load = load_seed(ledger)
+    definitions = {name: load_definition(seed_path(name)) for name in DEFINITIONS}
+    chosen = select_entries(ledger, definitions[POOLED])
+    pooled = pool_entries(chosen, method="reml")
+    figure = entries_forest_plot(
+        _new_file(folder / f"{definitions[POOLED].name}-forest.png"),
+        chosen,
+        pooled,
+        title="Programme effect (INVENTED)",
+    )
+    built = tuple(build_prior(ledger, d) for d in definitions.values())
+    return DemoRun(
+        load=load,
+        entries=tuple(ledger.entries(include_retracted=True)),
+        pooled_entries=tuple(chosen),
+        pooled=pooled,
+        forest=figure,
+        built=built,
+        traces=tuple(trace_prior(ledger, s.prior.label) for s in built),
+    )

@@ -37,12 +37,8 @@ def demo(
 
     Example: priorledger demo
     """
-    from registry.demo import DEFINITIONS, load_seed, seed_path
+    from registry.demo import run_demo
     from registry.emit import emit
-    from registry.priors.definition import load_definition
-    from registry.priors.selection import pool_entries
-    from registry.priors.store import build_prior, trace_prior
-    from registry.report.forest import forest_plot
 
     if db is None:
         db = str(Path(tempfile.mkdtemp(prefix="priorledger-demo-")) / "demo.db")
@@ -51,6 +47,8 @@ def demo(
     registry = ledger(db)
     folder = out_dir or (Path(db).parent if "://" not in db else Path.cwd())
     folder.mkdir(parents=True, exist_ok=True)
+    with err.status("running the demo: loading, pooling, building two priors"):
+        run = run_demo(registry, folder)
     out.rule("priorledger demo — INVENTED scenario")
     out.print(
         "A fictional network of community physiotherapy clinics plans a trial of a "
@@ -58,39 +56,25 @@ def demo(
         "below is invented."
     )
     out.print(f"registry: {registry.url}")
-    loaded = load_seed(registry)
     out.print(
-        f"\n1. loaded {len(loaded.sources.added)} sources and "
-        f"{len(loaded.sheet.added)} entries ({loaded.sheet.skipped} already present)"
+        f"\n1. loaded {len(run.load.sources.added)} sources and "
+        f"{len(run.load.sheet.added)} entries ({run.load.sheet.skipped} already present)"
     )
-    out.print(entries_table(registry.entries()))
-
-    effect = registry.entries(quantity="falls-programme-effect")
-    pooled = pool_entries([e for e in effect if e.id != 3], method="reml")
-    figure = forest_plot(
-        folder / "falls-programme-effect-forest.png",
-        [e.source for e in effect if e.id != 3],
-        [e.y for e in effect if e.id != 3],
-        [e.se for e in effect if e.id != 3],
-        pooled,
-        scale="log",
-        title="Programme effect (INVENTED)",
-        no_effect_line=True,
+    out.print(entries_table(list(run.entries)))
+    out.print(
+        "\n2. REML pooling of the programme's effect, one report per study as its "
+        "definition selects:"
     )
-    out.print("\n2. REML pooling of the programme's effect (one report per study):")
-    render(pooled, "log")
-    out.print(f"   forest plot: {figure}")
-
+    render(run.pooled, run.pooled_entries[0].scale)
+    out.print(f"   forest plot: {run.forest}")
     out.print("\n3. the two priors, built from the definition files in seed_entries/:")
-    built = []
-    for name in DEFINITIONS:
-        with err.status(f"building {name}"):
-            stored = build_prior(registry, load_definition(seed_path(name)))
-        built.append(stored)
+    for stored, trace in zip(run.built, run.traces, strict=True):
+        for warning in stored.result.warnings:
+            err.print(f"warning: {warning}")
         show(stored)
-        out.print(trace_tree(trace_prior(registry, stored.prior.label), short=True))
+        out.print(trace_tree(trace, short=True))
     out.print("\n4. the priors as code (`priorledger emit NAME --to ...` for every language):")
-    for stored in built:
+    for stored in run.built:
         for language in ("stan", "pymc"):
             out.rule(f"{stored.prior.label} — {language}")
             print_verbatim(emit(stored.prior, language))
