@@ -9,6 +9,7 @@ from collections.abc import Callable, Mapping
 from registry import __version__
 from registry.caution import CAUTION
 from registry.emit.names import sanitize
+from registry.errors import InputError
 from registry.values.measures import MEASURES
 from registry.values.prior import Component, Prior
 from registry.values.scales import NATURAL_NAME, NATURAL_SCALES, to_natural
@@ -24,6 +25,12 @@ def literal(x: float) -> str:
 
 def arguments(forms: Forms, component: Component) -> tuple[str, dict[str, float]]:
     """The language's function name and named arguments for one component."""
+    if component.family not in forms:
+        raise InputError(
+            f"this language has no form for a {component.family} component; emit to one "
+            f"that has ({', '.join(forms)} here)",
+            field="to",
+        )
     function, convert = forms[component.family]
     return function, convert(component.params)
 

@@ -25,10 +25,13 @@ from statistics import NormalDist
 
 from registry.errors import ConversionError
 from registry.values.measures import MEASURES as _TABLE
-from registry.values.measures import NAMES as MEASURES
+from registry.values.measures import NAMES, Measure
 from registry.values.scales import analysis_slope, domain, in_domain, to_analysis
 
+# A snapshot for readers; the functions below read the measure table itself, so that a row
+# added to it is served at once.
 ANALYSIS_SCALE: dict[str, str] = {name: m.scale for name, m in _TABLE.items()}
+MEASURES: tuple[str, ...] = NAMES
 
 NUMERIC_FIELDS: tuple[str, ...] = (
     "estimate", "lower", "upper", "level", "se", "p",
@@ -40,9 +43,6 @@ NUMERIC_FIELDS: tuple[str, ...] = (
     "r",
 )  # fmt: skip
 
-RATIO_MEASURES = frozenset(name for name, m in _TABLE.items() if m.ratio)
-# Measures with no null value, so a two-sided p-value says nothing about their SE.
-_NO_NULL = frozenset(name for name, m in _TABLE.items() if m.is_level)
 _DEFAULT_LEVEL = 0.95
 _STANDARD_NORMAL = NormalDist()
 _CHINN = math.sqrt(3.0) / math.pi  # d = ln(OR) * sqrt(3)/pi  (Chinn 2000)
@@ -78,7 +78,7 @@ def _value_rule(measure: str) -> tuple[Callable[[float], bool], str]:
     if bounds is not None:
         lo, hi = bounds
         return (lambda x: lo <= x <= hi), f"between {lo:g} and {hi:g}"
-    scale = ANALYSIS_SCALE[measure]
+    scale = _TABLE[measure].scale
     return (lambda x: in_domain(scale, x)), domain(scale)
 
 
@@ -87,7 +87,7 @@ def _check_values(measure: str, values: Mapping[str, float], fields: tuple[str, 
     for name in fields:
         if not ok(values[name]):
             raise ConversionError(
-                f"{name} of a {measure} ({ANALYSIS_SCALE[measure]} scale) must be {must}, "
+                f"{name} of a {measure} ({_TABLE[measure].scale} scale) must be {must}, "
                 f"got {_num(values[name])}",
                 field=name,
             )
@@ -107,7 +107,7 @@ def _suffix(scale: str) -> str:
 
 
 def _derived(measure: str, y: float, var: float, conversion: str, *corr: str) -> Derived:
-    scale = ANALYSIS_SCALE[measure]
+    scale = _TABLE[measure].scale
     return Derived(y=y, se=math.sqrt(var), scale=scale, conversion=conversion, corrections=corr)
 
 
@@ -138,7 +138,7 @@ def _from_ci(measure: str, v: Mapping[str, float]) -> Derived:
     y = g(estimate); se = (g(upper) - g(lower)) / (2 z), z = Φ⁻¹((1 + level)/2); for 95 %
     2z = 3.92 (Cochrane Handbook v6 §6.3.1; §6.3.2 for ratios, whose bounds are logged).
     """
-    scale = ANALYSIS_SCALE[measure]
+    scale = _TABLE[measure].scale
     _check_values(measure, v, ("estimate", "lower", "upper"))
     est, lo, hi = v["estimate"], v["lower"], v["upper"]
     if lo > est:
@@ -167,10 +167,10 @@ def _from_se(measure: str, v: Mapping[str, float]) -> Derived:
       analysis scale by the delta method, se_g = |g'(estimate)| se (common practice);
     - identity-scale measures: used as is.
     """
-    scale = ANALYSIS_SCALE[measure]
+    scale = _TABLE[measure].scale
     _check_values(measure, v, ("estimate",))
     est, se = v["estimate"], v["se"]
-    if scale == "identity" or measure in RATIO_MEASURES:
+    if scale == "identity" or _TABLE[measure].ratio:
         conversion = "se" + _suffix(scale)
     else:
         se *= abs(analysis_slope(scale, est))
@@ -185,7 +185,7 @@ def _from_p(measure: str, v: Mapping[str, float]) -> Derived:
     measures, §6.3.2 for ratios on the log scale; section numbers recalled). Refused for
     proportion, rate and mean, which have no null value.
     """
-    scale = ANALYSIS_SCALE[measure]
+    scale = _TABLE[measure].scale
     _check_values(measure, v, ("estimate",))
     y = to_analysis(scale, v["estimate"])
     if y == 0.0:
@@ -430,9 +430,29 @@ _COLUMN_RULES: dict[str, tuple[Callable[[float], bool], str]] = {
 
 
 @dataclass(frozen=True)
+class _Measures:
+    """The measures a form serves: those named, or every row of the measure table that passes
+    `test` (so a measure added to the table is served by the general forms)."""
+
+    names: frozenset[str] = frozenset()
+    test: Callable[[Measure], bool] | None = None
+
+    def __contains__(self, measure: object) -> bool:
+        if self.test is None:
+            return measure in self.names
+        return measure in _TABLE and self.test(_TABLE[str(measure)])
+
+
+def _named(*names: str | Mapping[str, object]) -> _Measures:
+    return _Measures(
+        frozenset(n for group in names for n in ([group] if isinstance(group, str) else group))
+    )
+
+
+@dataclass(frozen=True)
 class _Form:
     fields: tuple[str, ...]
-    measures: frozenset[str]
+    measures: _Measures
     compute: Callable[[str, Mapping[str, float]], Derived]
     optional: tuple[str, ...] = ()
     refusal: str = ""  # why the form gives nothing for the measures it leaves out
@@ -446,39 +466,41 @@ class _Form:
         return frozenset(self.fields + self.optional)
 
 
-_ALL = frozenset(MEASURES)
+_ALL = _Measures(test=lambda m: True)
+# A two-sided p-value gives a standard error only against a null value, which a level lacks.
+_CONTRASTS = _Measures(test=lambda m: not m.is_level)
 _FORMS: tuple[_Form, ...] = (  # the order breaks ties: earlier forms are preferred
     _Form(("estimate", "lower", "upper"), _ALL, _from_ci, optional=("level",)),
     _Form(("estimate", "se"), _ALL, _from_se),
     _Form(
         ("estimate", "p"),
-        _ALL - _NO_NULL,
+        _CONTRASTS,
         _from_p,
         refusal="a two-sided p-value gives a standard error only against a null value "
         "(a difference of 0, a ratio of 1), and a {measure} has none",
     ),
-    _Form(("events", "total"), frozenset({"proportion"}), _from_events_total),
-    _Form(("events", "exposure"), frozenset({"rate"}), _from_events_exposure),
+    _Form(("events", "total"), _named("proportion"), _from_events_total),
+    _Form(("events", "exposure"), _named("rate"), _from_events_exposure),
     _Form(
         ("events_a", "total_a", "events_b", "total_b"),
-        frozenset(_TWO_BY_TWO),
+        _named(_TWO_BY_TWO),
         _from_two_by_two,
     ),
     _Form(
         ("events_a", "exposure_a", "events_b", "exposure_b"),
-        frozenset({"rate_ratio"}),
+        _named("rate_ratio"),
         _from_rate_counts,
     ),
     _Form(
         ("mean_a", "sd_a", "n_a", "mean_b", "sd_b", "n_b"),
-        frozenset(_TWO_GROUPS),
+        _named(_TWO_GROUPS),
         _from_two_groups,
     ),
-    _Form(("mean", "sd", "n"), frozenset({"mean"}), _from_mean_sd),
-    _Form(("median", "min", "max", "n"), frozenset({"mean"}), _from_median),
-    _Form(("median", "q1", "q3", "n"), frozenset({"mean"}), _from_median),
-    _Form(("min", "q1", "median", "q3", "max", "n"), frozenset({"mean"}), _from_median),
-    _Form(("r", "n"), frozenset({"correlation"}), _from_r),
+    _Form(("mean", "sd", "n"), _named("mean"), _from_mean_sd),
+    _Form(("median", "min", "max", "n"), _named("mean"), _from_median),
+    _Form(("median", "q1", "q3", "n"), _named("mean"), _from_median),
+    _Form(("min", "q1", "median", "q3", "max", "n"), _named("mean"), _from_median),
+    _Form(("r", "n"), _named("correlation"), _from_r),
 )
 
 
@@ -545,7 +567,7 @@ def _select_form(measure: str, present: frozenset[str]) -> _Form:
         )
     if measure not in form.measures:
         why = form.refusal.format(measure=measure) or (
-            f"that form gives {', '.join(m for m in MEASURES if m in form.measures)}"
+            f"that form gives {', '.join(m for m in _TABLE if m in form.measures)}"
         )
         raise ConversionError(
             f"measure {measure} cannot be derived from '{form.label}': {why}; "
@@ -588,9 +610,9 @@ def derive(measure: str, reported: Mapping[str, float]) -> Derived:
     function. Raises ``ConversionError`` whose ``field`` names the column at fault (or
     ``"measure"``), with what it must be and what it got.
     """
-    if measure not in ANALYSIS_SCALE:
+    if measure not in _TABLE:
         raise ConversionError(
-            f"measure must be one of {', '.join(MEASURES)}, got {measure!r}", field="measure"
+            f"measure must be one of {', '.join(_TABLE)}, got {measure!r}", field="measure"
         )
     values = _checked_columns(reported)
     form = _select_form(measure, frozenset(values))

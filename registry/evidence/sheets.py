@@ -16,7 +16,8 @@ from dataclasses import dataclass, field, replace
 from pathlib import Path
 
 from registry.errors import ConversionError, InputError
-from registry.evidence.convert import MEASURES, NUMERIC_FIELDS, Derived, derive
+from registry.evidence.convert import NUMERIC_FIELDS, Derived, derive
+from registry.values.measures import MEASURES
 
 REQUIRED = ("source", "quantity", "measure")
 # Columns that describe the source rather than the entry; they fill in a new source.
