@@ -116,9 +116,7 @@ def _on_grid(prior: Prior, study: Study, points: int) -> _OnGrid:
     mixture = logsumexp(np.stack(log_post), axis=0, b=weights[:, None])
     mass = grid.probabilities(mixture)
     mean = float(mass @ theta)
-    quantiles = tuple(
-        float(from_canonical(support, grid.quantile(mixture, q))) for q in QUANTILES
-    )
+    quantiles = tuple(float(from_canonical(support, grid.quantile(mixture, q))) for q in QUANTILES)
     summary = Summary(mean, math.sqrt(float(mass @ (theta - mean) ** 2)), quantiles)
     return _OnGrid(weights, log_post, grid, summary, tuple(parts))
 
