@@ -198,25 +198,9 @@ def test_commands_on_the_bcg_prior_write_nothing(cli, bcg, tmp_path: Path) -> No
     assert {"p_value", "method", "level", "conflict"} <= set(doc["conflict"])
     assert {"components", "mean", "sd", "quantiles"} <= set(doc["posterior"])
     update = doc
-    r = cli(
-        "sensitivity",
-        "bcg",
-        "--estimate",
-        "-0.5",
-        "--se",
-        "0.2",
-        "--over",
-        "robust_weight",
-        "--values",
-        "0,0.2,0.5,1",
-        "--probability-below",
-        "-0.4",
-        "--decide",
-        "0.5",
-        "--json",
-        "--db",
-        bcg,
-    )
+    sweep = ("sensitivity", "bcg", "--estimate", "-0.5", "--se", "0.2", "--over")
+    sweep += ("robust_weight", "--probability-below", "-0.4", "--json", "--db", bcg)
+    r = cli(*sweep, "--values", "0,0.2,0.5,1", "--decide", "0.5")
     assert r.code == 0 and _digest(bcg) == before
     doc = json.loads(r.stdout)
     assert {"prior", "over", "rows", "tipping_point"} <= set(doc)
@@ -239,25 +223,7 @@ def test_commands_on_the_bcg_prior_write_nothing(cli, bcg, tmp_path: Path) -> No
         lo, hi = crossing[0]
         assert lo <= tp <= hi
         near = [
-            json.loads(
-                cli(
-                    "sensitivity",
-                    "bcg",
-                    "--estimate",
-                    "-0.5",
-                    "--se",
-                    "0.2",
-                    "--over",
-                    "robust_weight",
-                    "--values",
-                    f"{v}",
-                    "--probability-below",
-                    "-0.4",
-                    "--json",
-                    "--db",
-                    bcg,
-                ).stdout
-            )["rows"][0]["probability"]
+            json.loads(cli(*sweep, "--values", f"{v}").stdout)["rows"][0]["probability"]
             for v in (max(tp - 2e-3, 0), min(tp + 2e-3, 1))
         ]
         assert (near[0] - 0.5) * (near[1] - 0.5) <= 0

@@ -17,11 +17,8 @@ from registry.cli.common import (
     out,
     print_json,
 )
+from registry.cli.prior_cmds import Label
 from registry.errors import CheckFailed, InputError
-
-Label = Annotated[
-    str, typer.Argument(metavar="NAME[@N]", help="A prior, latest version by default.")
-]
 
 
 def _opt(name: str, metavar: str, text: str) -> Any:
