@@ -1,4 +1,4 @@
-"""Checks of registry.synthesis.bayes against methods written here, independent of the module.
+"""Checks of the Bayesian hierarchical models against methods written here, independently.
 
 Data (published; numbers recalled from memory, as widely reprinted):
 - BCG vaccine trials, Colditz et al. (1994) JAMA 271:698, 13 trials: tuberculosis cases and
@@ -24,7 +24,7 @@ from hypothesis import strategies as st
 from scipy import integrate, optimize, special, stats
 
 from registry.errors import InputError
-from registry.synthesis.bayes import (
+from registry.synthesis import (
     QUANTILE_ACCURACY,
     MuPrior,
     TauPrior,

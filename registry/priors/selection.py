@@ -92,7 +92,7 @@ def pool_entries(
     (`apply_normal`); `bayes` fits the hierarchical model by quadrature, with the exact count
     likelihood when `likelihood` is "exact", and passes the discounts into the likelihood.
     """
-    from registry.synthesis import bayes, frequentist
+    from registry.synthesis import fit_counts, fit_normal, frequentist
 
     measure, scale = check_selection(entries)
     if likelihood not in LIKELIHOODS:
@@ -123,6 +123,5 @@ def pool_entries(
     se = [e.se for e in entries]
     if likelihood == "exact":
         kind, events, sizes = counts_of(entries, measure)
-        fit = bayes.fit_binomial if kind == "binomial" else bayes.fit_poisson
-        return fit(events, sizes, tau_prior, mu_prior, **options)
-    return bayes.fit_normal(y, se, tau_prior, mu_prior, scale=scale, **options)
+        return fit_counts(kind, events, sizes, tau_prior, mu_prior, **options)
+    return fit_normal(y, se, tau_prior, mu_prior, scale=scale, **options)
