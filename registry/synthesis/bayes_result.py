@@ -9,7 +9,7 @@ Accuracy: `QUANTILE_ACCURACY` is the stated bound on the error of the predictive
 `TAU_ACCURACY` the bound on the error of the tau median and of the ends of its credible
 interval, in units of max(1, upper end). The result carries both as absolute figures. Both
 are checked by refinement (`refine` > 1 narrows every spacing, raises the Gauss-Hermite order
-and widens the cut) in `tests/test_bayes_accuracy.py`.
+and widens the cut) in `tests/test_bayes.py`.
 """
 
 from __future__ import annotations
