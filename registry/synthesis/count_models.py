@@ -18,7 +18,7 @@ from __future__ import annotations
 
 import math
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, Unpack
 
 import numpy as np
 
@@ -26,7 +26,7 @@ from registry.errors import InputError, NumericalError
 from registry.synthesis.bayes_result import BayesResult, Posterior, assemble, tau_summary
 from registry.synthesis.count_likelihoods import LIKELIHOODS, CountLikelihood
 from registry.synthesis.hyperpriors import MuPrior, TauPrior, resolve_priors
-from registry.synthesis.inputs import Discount, as_array, discount
+from registry.synthesis.inputs import Discount, FitOptions, as_array, discount
 from registry.synthesis.kernels import CHUNK, KernelSum
 from registry.synthesis.logtau import (
     check_refine,
@@ -374,29 +374,15 @@ def fit_binomial(
     totals: Any,
     tau_prior: TauPrior | str,
     mu_prior: MuPrior | str | None = None,
-    *,
-    power: Any = None,
-    bias_shift: Any = None,
-    bias_var: Any = None,
-    refine: float = 1.0,
+    **options: Unpack[FitOptions],
 ) -> BayesResult:
     """Binomial-logit hierarchical model for single-arm proportions events_i / totals_i.
 
     y_i ~ Bin(n_i, expit(theta_i)), theta_i ~ N(mu + b_i, tau² + v_i); the likelihood is exact
     (each theta_i integrated by adaptive Gauss-Hermite), raised to a_i when `power` is given.
-    Results are on the logit scale.
+    Results are on the logit scale. `options`: power, bias_shift, bias_var, refine.
     """
-    return fit_counts(
-        "binomial",
-        events,
-        totals,
-        tau_prior,
-        mu_prior,
-        power=power,
-        bias_shift=bias_shift,
-        bias_var=bias_var,
-        refine=refine,
-    )
+    return fit_counts("binomial", events, totals, tau_prior, mu_prior, **options)
 
 
 def fit_poisson(
@@ -404,25 +390,12 @@ def fit_poisson(
     exposures: Any,
     tau_prior: TauPrior | str,
     mu_prior: MuPrior | str | None = None,
-    *,
-    power: Any = None,
-    bias_shift: Any = None,
-    bias_var: Any = None,
-    refine: float = 1.0,
+    **options: Unpack[FitOptions],
 ) -> BayesResult:
     """Poisson-log hierarchical model for event counts y_i over exposures E_i.
 
     y_i ~ Poisson(E_i exp(theta_i)), theta_i ~ N(mu + b_i, tau² + v_i); the likelihood is
-    exact, raised to a_i when `power` is given. Results are on the log-rate scale.
+    exact, raised to a_i when `power` is given. Results are on the log-rate scale. `options`:
+    power, bias_shift, bias_var, refine.
     """
-    return fit_counts(
-        "poisson",
-        events,
-        exposures,
-        tau_prior,
-        mu_prior,
-        power=power,
-        bias_shift=bias_shift,
-        bias_var=bias_var,
-        refine=refine,
-    )
+    return fit_counts("poisson", events, exposures, tau_prior, mu_prior, **options)

@@ -8,7 +8,7 @@ beta_i (Turner, Spiegelhalter, Smith & Thompson 2009, JRSS A 172:21).
 from __future__ import annotations
 
 from dataclasses import dataclass
-from typing import Any
+from typing import Any, TypedDict
 
 import numpy as np
 
@@ -26,6 +26,15 @@ def as_array(name: str, values: Any, k: int | None = None) -> np.ndarray:
     if not np.all(np.isfinite(arr)):
         raise InputError(f"{name} must be finite numbers", field=name)
     return arr
+
+
+class FitOptions(TypedDict, total=False):
+    """Keyword options of the fit functions: per-study discounts and the refinement factor."""
+
+    power: Any
+    bias_shift: Any
+    bias_var: Any
+    refine: float
 
 
 @dataclass(frozen=True)
