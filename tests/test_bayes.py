@@ -4,7 +4,8 @@ Data (published; numbers recalled from memory, as widely reprinted):
 - BCG vaccine trials, Colditz et al. (1994) JAMA 271:698, 13 trials: tuberculosis cases and
   totals in the vaccinated and control arms. The normal model uses each trial's log risk
   ratio with var = 1/a - 1/n1 + 1/c - 1/n2 (Borenstein et al. 2009, ch. 5); the binomial
-  model uses the control arms.
+  model uses the control arms, and (for the refinement checks) the vaccinated arms, each arm
+  as single-arm proportions.
 - Pump failures, Gaver & O'Muircheartaigh (1987) Technometrics 29:1, 10 pumps: failures and
   operating times (thousands of hours), for the Poisson model.
 
