@@ -31,7 +31,7 @@ import time
 import numpy as np
 from scipy import special
 
-from registry.synthesis.bayes import QUANTILE_ACCURACY, fit_binomial, fit_normal
+from registry.synthesis import QUANTILE_ACCURACY, fit_binomial, fit_normal
 
 LEVELS = np.array([0.025, 0.5, 0.975])
 

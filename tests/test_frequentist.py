@@ -9,7 +9,8 @@ which cross-checks the counts.
 
 References used as checks:
 - statsmodels.stats.meta_analysis.combine_effects (test-only reference library) for DL,
-  PM and its HKSJ ("random effect wls") interval;
+  PM and its HKSJ ("random effect wls") interval, and for the tau², mu and se from which
+  the prediction intervals are built;
 - published values for REML/ML on this dataset (recalled from memory);
 - the (restricted) log-likelihood of Viechtbauer (2005, J Educ Behav Stat 30:261), written
   out here and maximised directly with scipy.optimize;
@@ -205,6 +206,65 @@ def test_prediction_interval_formula() -> None:
     res = pool(Y, SE, "reml")
     half = stats.t.ppf(0.975, len(Y) - 2) * math.sqrt(res.tau2 + res.se**2)
     assert res.prediction == pytest.approx((res.mu - half, res.mu + half), abs=1e-12)
+
+
+@pytest.mark.parametrize("method", ["dl", "pm"])
+@pytest.mark.parametrize("hksj", [False, True])
+def test_prediction_interval_from_statsmodels_estimates(method: str, hksj: bool) -> None:
+    # Higgins, Thompson & Spiegelhalter (2009): mu ± t_{k-2} sqrt(tau² + se²), built here
+    # from statsmodels' tau², mu and its inverse-variance se; the Hartung-Knapp variant from
+    # statsmodels' HKSJ se, reported apart.
+    ref = combine_effects(Y, VAR, method_re=method, **(SM_PM_OPTIONS if method == "pm" else {}))
+    crit = stats.t.ppf(0.975, len(Y) - 2)
+    res = pool(Y, SE, method, hksj=hksj)
+    for got, se in (
+        (res.prediction, ref.sd_eff_w_re),
+        (res.prediction_hksj, ref.sd_eff_w_re_hksj if hksj else None),
+    ):
+        if se is None:
+            assert got is None
+            continue
+        half = crit * math.sqrt(ref.tau2 + se**2)
+        assert got == pytest.approx(
+            (ref.mean_effect_re - half, ref.mean_effect_re + half), abs=1e-6
+        )
+
+
+@pytest.mark.parametrize("method", ["dl", "pm", "reml", "ml"])
+def test_prediction_interval_does_not_depend_on_hksj(method: str) -> None:
+    plain, hk = pool(Y, SE, method), pool(Y, SE, method, hksj=True)
+    assert hk.prediction == plain.prediction
+    assert plain.prediction_hksj is None and hk.prediction_hksj is not None
+    doc = hk.to_dict()
+    assert doc["prediction"] == list(plain.prediction)
+    assert doc["prediction_hksj"] == list(hk.prediction_hksj)
+
+
+# Invented data (constructed for this check): two precise studies far apart and two
+# imprecise ones, for which the DerSimonian-Laird tau² falls below the lower end of its own
+# Q-profile interval.
+OUTSIDE_Y = [0.05, -0.98, -0.34, 1.15]
+OUTSIDE_SE = [0.07, 0.33, 0.07, 0.3]
+
+
+def test_note_when_tau2_lies_outside_its_q_profile_interval() -> None:
+    y, v = np.array(OUTSIDE_Y), np.array(OUTSIDE_SE) ** 2
+    # independent computation: DL by its formula (DerSimonian & Laird 1986), the Q-profile
+    # lower end by root-finding on Q_gen = chi²_{k-1, 0.975} (Viechtbauer 2007)
+    w = 1 / v
+    dl = (q_gen(0.0, y, v) - (len(y) - 1)) / (w.sum() - (w**2).sum() / w.sum())
+    lower = optimize.brentq(
+        lambda t: q_gen(t, y, v) - stats.chi2.ppf(0.975, len(y) - 1), 0.0, 100.0, xtol=1e-14
+    )
+    assert dl < lower
+    res = pool(OUTSIDE_Y, OUTSIDE_SE, "dl")
+    assert res.tau2 == pytest.approx(dl, rel=1e-10)
+    assert res.tau2_ci[0] == pytest.approx(lower, rel=1e-8)
+    assert any("below its own 95% Q-profile interval" in note for note in res.notes)
+    # no such note where the estimate lies inside (BCG: DL 0.309 in [0.120, 1.112])
+    for method in ("dl", "pm"):
+        assert not any("Q-profile interval [" in n for n in pool(Y, SE, method).notes)
+    assert not any("Q-profile interval [" in n for n in pool(OUTSIDE_Y, OUTSIDE_SE, "pm").notes)
 
 
 def test_weights_are_percentages_of_inverse_variance_weights() -> None:

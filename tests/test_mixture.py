@@ -10,7 +10,7 @@ import pytest
 from scipy import special, stats
 
 from registry.errors import InputError
-from registry.synthesis.bayes import fit_binomial
+from registry.synthesis import fit_binomial
 from registry.synthesis.mixture import ERROR_LEVELS, QUANTILE_ERROR_BOUND, fit_mixture
 from registry.values.prior import Component
 

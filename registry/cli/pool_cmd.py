@@ -151,7 +151,10 @@ def render(result: Any, scale: str) -> None:
     i2 = "" if result.i2 is None else f", I² {result.i2:.1f}%"
     out.print(f"  tau²        {tau2}{i2}, Q {result.q:.3f}")
     out.print(f"  prediction  {_interval(result.prediction, scale)}")
-    predictive = getattr(result, "predictive", None)
+    hksj = getattr(result, "prediction_hksj", None)  # frequentist results with --hksj only
+    if hksj is not None:
+        out.print(f"  prediction, Hartung-Knapp variant  {_interval(hksj, scale)}")
+    predictive = result.predictive
     if predictive is not None:
         quantiles = ", ".join(
             f"{k}: {v:.4f}"
@@ -159,5 +162,5 @@ def render(result: Any, scale: str) -> None:
             if k in ("0.025", "0.5", "0.975")
         )
         out.print(f"  predictive  mean {predictive.mean:.4f}, sd {predictive.sd:.4f}; {quantiles}")
-    for note in getattr(result, "notes", ()):
+    for note in result.notes:
         out.print(f"  note: {note}")

@@ -176,7 +176,7 @@ class Target:
 def _target(pooled: Any, definition: Definition, k: int) -> Target:
     import numpy as np
 
-    if getattr(pooled, "predictive", None) is not None and definition["target"] == "predictive":
+    if pooled.predictive is not None and definition["target"] == "predictive":
         p = pooled.predictive
         return Target(p.mean, p.sd, np.asarray(p.x), np.asarray(p.density), exact=p)
     if definition["target"] == "mean":

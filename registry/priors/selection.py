@@ -136,7 +136,7 @@ def pool_entries(
     likelihood when `likelihood` is "exact", and passes the discounts into the likelihood.
     Entries from retracted sources are refused unless `include_retracted` is True.
     """
-    from registry.synthesis import bayes, frequentist
+    from registry.synthesis import fit_counts, fit_normal, frequentist
 
     row = check_selection(entries)
     retracted = [e.id for e in entries if e.retracted]
@@ -173,9 +173,8 @@ def pool_entries(
     }
     if likelihood == "exact":
         kind, events, sizes = counts_of(entries, row)
-        fit = {"binomial": bayes.fit_binomial, "poisson": bayes.fit_poisson}[kind]
-        return fit(events, sizes, tau_prior, mu_prior, **options)
-    return bayes.fit_normal(
+        return fit_counts(kind, events, sizes, tau_prior, mu_prior, **options)
+    return fit_normal(
         [e.y for e in entries],
         [e.se for e in entries],
         tau_prior,

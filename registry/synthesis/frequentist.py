@@ -38,7 +38,11 @@ class PoolResult:
 
     `weights` are each study's percentage weight (the w_i above, normalised to sum to 100).
     `tau2` is None for the common-effect model and for k = 1; `notes` says in plain sentences
-    what could not be computed and why.
+    what could not be computed and why. `prediction` is always the standard interval of
+    Higgins, Thompson & Spiegelhalter (2009); `prediction_hksj` is its variant on the
+    Hartung-Knapp standard error, given only when `hksj` is set. `predictive` is None: a
+    frequentist fit has no predictive distribution (the field keeps the pooled-result contract
+    of `registry.synthesis.result`).
     """
 
     k: int
@@ -58,6 +62,8 @@ class PoolResult:
     level: float
     weights: tuple[float, ...]
     notes: tuple[str, ...] = ()
+    prediction_hksj: tuple[float, float] | None = None
+    predictive: None = None
 
     @property
     def tau(self) -> float | None:
@@ -85,10 +91,12 @@ class PoolResult:
             "q_df": self.q_df,
             "q_p": self.q_p,
             "prediction": pair(self.prediction),
+            "prediction_hksj": pair(self.prediction_hksj),
             "hksj": self.hksj,
             "level": self.level,
             "weights": list(self.weights),
             "notes": list(self.notes),
+            "predictive": None,
         }
 
 
@@ -111,9 +119,12 @@ def pool(
     when the studies agree more closely than their standard errors suggest.
 
     Prediction interval for a new study's parameter (Higgins, Thompson & Spiegelhalter 2009,
-    JRSS A 172:137): mu_hat ± t_{k-2,(1+level)/2} sqrt(tau² + se(mu_hat)²), k >= 3. Here
-    se(mu_hat) is the standard error the result reports (the HKSJ one when `hksj=True`), so
-    the prediction interval is never built on a smaller uncertainty than the interval for mu.
+    JRSS A 172:137): mu_hat ± t_{k-2,(1+level)/2} sqrt(tau² + se(mu_hat)²), k >= 3, always
+    with the inverse-variance se(mu_hat) = (sum w_i)^(-1/2), whatever `hksj` says. With
+    `hksj=True` the same formula on se_HK is reported apart, as `prediction_hksj` (it is
+    narrower than the standard interval when se_HK < se).
+
+    When the tau² estimate lies outside its own Q-profile interval, a note says so.
 
     Q, I² and H² come from `registry.synthesis.heterogeneity` (Higgins & Thompson 2002); the
     Q-profile interval for tau² is from Viechtbauer (2007), at the same `level`.
@@ -141,7 +152,7 @@ def pool(
 
     w = 1.0 / (v + (tau2 or 0.0))
     mu = float(np.sum(w * y_arr) / np.sum(w))
-    se_mu = math.sqrt(1.0 / float(np.sum(w)))
+    se_wald = se_mu = math.sqrt(1.0 / float(np.sum(w)))
     tail = (1.0 + level) / 2.0
     crit = float(stats.norm.ppf(tail))
     if hksj and k >= 2:
@@ -159,9 +170,12 @@ def pool(
     ci = (mu - crit * se_mu, mu + crit * se_mu)
 
     prediction: tuple[float, float] | None = None
+    prediction_hksj: tuple[float, float] | None = None
     if tau2 is not None and k >= 3:
-        half = float(stats.t.ppf(tail, k - 2)) * math.sqrt(tau2 + se_mu**2)
-        prediction = (mu - half, mu + half)
+        crit_pred = float(stats.t.ppf(tail, k - 2))
+        prediction = _prediction(mu, tau2, se_wald, crit_pred)
+        if hksj:
+            prediction_hksj = _prediction(mu, tau2, se_mu, crit_pred)
     elif tau2 is not None:
         notes.append(
             "A prediction interval needs k >= 3 (it uses t with k - 2 degrees of "
@@ -175,6 +189,8 @@ def pool(
             "interval for tau² collapses to [0, 0]; the data are more homogeneous "
             "than their standard errors suggest."
         )
+    if tau2 is not None and tau2_ci is not None:
+        notes.extend(_outside_q_profile_note(method, tau2, tau2_ci, level))
 
     return PoolResult(
         k=k,
@@ -194,7 +210,41 @@ def pool(
         level=level,
         weights=tuple(float(x) for x in 100.0 * w / np.sum(w)),
         notes=tuple(notes),
+        prediction_hksj=prediction_hksj,
     )
+
+
+def _prediction(mu: float, tau2: float, se: float, crit: float) -> tuple[float, float]:
+    """mu ± crit sqrt(tau² + se²) (Higgins, Thompson & Spiegelhalter 2009)."""
+    half = crit * math.sqrt(tau2 + se**2)
+    return mu - half, mu + half
+
+
+_METHOD_NAMES = {"dl": "DerSimonian-Laird", "pm": "Paule-Mandel", "reml": "REML", "ml": "ML"}
+
+
+def _outside_q_profile_note(
+    method: str, tau2: float, interval: tuple[float, float], level: float
+) -> list[str]:
+    """A note when tau² lies outside its Q-profile interval (Viechtbauer 2007), else none.
+
+    The estimators solve other equations than the Q-profile (DerSimonian-Laird's moment
+    equation weights by 1/v_i, not 1/(v_i + tau²)), so the two can disagree; a small relative
+    tolerance keeps rounding at a shared end from counting.
+    """
+    lower, upper = interval
+    slack = 1e-9 * (1.0 + upper)
+    if lower - slack <= tau2 <= upper + slack:
+        return []
+    side = "below" if tau2 < lower else "above"
+    return [
+        f"The {_METHOD_NAMES[method]} estimate of tau² ({tau2:.4g}) lies {side} its own "
+        f"{100 * level:g}% Q-profile interval [{lower:.4g}, {upper:.4g}]: the generalised Q "
+        "statistic finds that value of tau² implausible at this level, so the estimate and the "
+        "interval disagree about the heterogeneity. Read tau² (and the prediction interval "
+        "built on it) with caution; the Paule-Mandel estimate solves the same Q equation as "
+        "the interval and lies inside it at the usual levels."
+    ]
 
 
 def _validated(
