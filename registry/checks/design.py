@@ -734,7 +734,8 @@ def evaluate_design(prior: Prior, spec: DesignSpec, *, progress: Progress = _qui
             "futility": spec.futility,
             "success": (
                 f"P(treatment {endpoint.contrast.name} "
-                f"{'>' if sign > 0 else '<'} {sign * spec.margin:g} | data) > {spec.threshold}"
+                f"{'>' if sign > 0 else '<'} {sign * spec.margin + 0.0:g} | data) "
+                f"> {spec.threshold}"
                 if two_arm
                 else f"P(value {'>' if sign > 0 else '<'} reference "
                 f"{'+' if sign > 0 else '-'} {spec.margin:g} | data) > {spec.threshold}"
@@ -848,7 +849,7 @@ def evaluate_design(prior: Prior, spec: DesignSpec, *, progress: Progress = _qui
     )
     progress("done", 1.0)
     return DesignResult(
-        prior=_prior_info(prior),
+        prior={**_prior_info(prior), "median": central},
         design=design,
         method=method,
         threshold=spec.threshold,
