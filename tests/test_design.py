@@ -18,6 +18,7 @@ from registry.errors import InputError
 from registry.values.prior import Component, Prior
 from tests.conftest import write_sheet
 from tests.test_frequentist import BCG_COUNTS
+from tests.test_trust import BCG_CONTROL
 
 FLAT = Prior(
     "flat", 1, "", "probability", (Component("beta", {"a": 1.0, "b": 1.0}),), measure="proportion"
@@ -180,25 +181,6 @@ def test_bad_specifications_are_input_errors() -> None:
 
 # ---- the command, on a prior built from the BCG control arms ------------------------------
 
-DEFINITION = """
-name = "bcg-control"
-parameter = "risk of tuberculosis in an unvaccinated control arm"
-target = "predictive"
-[select]
-quantity = "bcg-control-risk"
-[pool]
-method = "bayes"
-likelihood = "exact"
-tau_prior = "half-normal:1"
-mu_prior = "normal:0,10"
-[discount]
-mechanism = "none"
-robust_weight = 0.2
-[output]
-family = "auto"
-ess_unit = "participants"
-"""
-
 
 @pytest.fixture
 def stored(cli, tmp_path: Path) -> Path:
@@ -221,7 +203,7 @@ def stored(cli, tmp_path: Path) -> Path:
     )
     assert cli("import", sheet, "--db", db).code == 0
     definition = tmp_path / "bcg.toml"
-    definition.write_text(DEFINITION)
+    definition.write_text(BCG_CONTROL)  # the BCG control-arm definition of test_trust
     built = cli("build", definition, "--db", db)
     assert built.code == 0, built.stderr
     return db
