@@ -75,7 +75,7 @@ def bcg(cli, tmp_path: Path) -> Path:
         ],
         *rows,
     )
-    assert cli("import", sheet, "--db", db).code == 0
+    assert cli("import", sheet, "--create-sources", "--db", db).code == 0
     return db
 
 
@@ -239,7 +239,7 @@ def test_a_study_reported_twice_must_be_resolved(cli, bcg: Path, tmp_path: Path)
         ["source", "study", "quantity", "measure", "estimate", "lower", "upper"],
         ["bcg00b", "bcg00", "bcg-tb-risk", "risk_ratio", "0.4", "0.12", "1.2"],
     )
-    cli("import", sheet, "--db", bcg)
+    cli("import", sheet, "--create-sources", "--db", bcg)
     refused = cli("build", definition_file(tmp_path), "--db", bcg)
     assert refused.code == 2 and "select.studies" in refused.stderr
     resolved = BASE.replace(

@@ -47,22 +47,53 @@ def import_sheet(
     dry_run: Annotated[
         bool, typer.Option("--dry-run", help="Check and report; write nothing.")
     ] = False,
+    decimal_comma: Annotated[
+        bool,
+        typer.Option("--decimal-comma", help="Numbers are written with a decimal comma (0,15)."),
+    ] = False,
+    reason: Annotated[
+        str | None,
+        typer.Option(
+            "--reason",
+            metavar="TEXT",
+            help='Reason for revisions of keyed rows (default "re-imported from FILE").',
+        ),
+    ] = None,
+    allow_revert: Annotated[
+        bool,
+        typer.Option(
+            "--allow-revert", help="Let a row equal to an older revision become the newest."
+        ),
+    ] = False,
+    create_sources: Annotated[
+        bool,
+        typer.Option("--create-sources", help="Create a bare source for an unknown source key."),
+    ] = False,
     db: DbOption = None,
     as_json: JsonOption = False,
 ) -> None:
     """Import an extraction sheet: every row or, if any row is bad, none.
 
+    A row with a row_key that is already stored with other cells becomes a new revision.
+
     Example: priorledger import falls-sheet.csv --dry-run
     """
-    report = ledger(db).import_sheet(sheet, dry_run=dry_run)
+    report = ledger(db).import_sheet(
+        sheet,
+        dry_run=dry_run,
+        decimal_comma=decimal_comma,
+        reason=reason,
+        allow_revert=allow_revert,
+        create_sources=create_sources,
+    )
     if as_json:
         print_json(report.to_dict())
         return
-    err.print(
-        report.message
-        if report.entries
-        else f"{sheet}: all {report.rows} rows are already in the registry; nothing added"
-    )
+    err.print(report.message)
+    for plan in report.planned("revise") + report.planned("not_reverted"):
+        changed = ", ".join(f"{k} {v['from']} -> {v['to']}" for k, v in plan.changes.items())
+        verb = "revises" if plan.action == "revise" else "is not reverted:"
+        err.print(f"  row {plan.row} {verb} entry {plan.entry}: {changed}")
 
 
 @sources_app.callback(invoke_without_command=True)

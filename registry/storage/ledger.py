@@ -138,13 +138,38 @@ class EntryHistory:
     current: EntryView
     revisions: tuple[EntryView, ...]
     imported_from: str | None = None
+    row_key: str | None = None
 
     def to_dict(self) -> dict[str, Any]:
         return {
             **self.current.to_dict(),
             "imported_from": self.imported_from,
+            "row_key": self.row_key,
             "revisions": [r.to_dict() for r in self.revisions],
         }
+
+
+@dataclass(frozen=True)
+class RowPlan:
+    """What an import does with one sheet row, and why."""
+
+    row: int
+    action: str  # add | revise | present | not_reverted
+    entry: int | None = None
+    revision: int | None = None  # the revision it adds, is present as, or would revert to
+    changes: dict[str, dict[str, str | None]] = field(default_factory=dict)
+    note: str = ""
+
+    def to_dict(self) -> dict[str, Any]:
+        doc: dict[str, Any] = {"row": self.row, "entry": self.entry, "revision": self.revision}
+        if self.action in ("revise", "not_reverted"):
+            doc["changes"] = self.changes
+        if self.note:
+            doc["note"] = self.note
+        return doc
+
+
+_ACTIONS = ("add", "revise", "present", "not_reverted")
 
 
 @dataclass(frozen=True)
@@ -156,13 +181,26 @@ class ImportReport:
     new_sources: tuple[str, ...] = ()
     dry_run: bool = False
     entries: tuple[SheetRow, ...] = field(default=(), repr=False)
+    plan: tuple[RowPlan, ...] = ()
+
+    def planned(self, action: str) -> list[RowPlan]:
+        return [p for p in self.plan if p.action == action]
 
     @property
     def message(self) -> str:
-        what = "would add" if self.dry_run else "added"
-        text = f"{self.path}: {self.rows} rows read, {what} {len(self.entries)} entries"
-        if self.skipped:
-            text += f", {self.skipped} already in the registry"
+        counts = {a: len(self.planned(a)) for a in _ACTIONS}
+        add, revise = ("would add", "would revise") if self.dry_run else ("added", "revised")
+        text = f"{self.path}: {self.rows} rows read, "
+        if counts["add"] or counts["revise"]:
+            text += f"{add} {counts['add']} entries, {revise} {counts['revise']}"
+        else:
+            text += "nothing added"
+        text += f", {counts['present']} already in the registry"
+        if counts["not_reverted"]:
+            text += (
+                f", {counts['not_reverted']} rows match an older revision and are left at the "
+                "newer one (--allow-revert to bring them back)"
+            )
         if self.new_sources:
             text += f", {len(self.new_sources)} new sources"
         return text
@@ -175,6 +213,7 @@ class ImportReport:
             "skipped": self.skipped,
             "new_sources": list(self.new_sources),
             "dry_run": self.dry_run,
+            **{f"rows_{a}": [p.to_dict() for p in self.planned(a)] for a in _ACTIONS},
         }
 
 
@@ -209,6 +248,33 @@ def _head_revisions():  # type: ignore[no-untyped-def]
         latest,
         (EntryRevision.entry_id == latest.c.entry_id) & (EntryRevision.revision == latest.c.rev),
     )
+
+
+def _head_of(session: Session, entry_id: int) -> int | None:
+    return session.scalar(
+        select(func.max(EntryRevision.revision)).where(EntryRevision.entry_id == entry_id)
+    )
+
+
+def _keyed_plan(row: SheetRow, entry: Entry, allow_revert: bool) -> RowPlan:
+    """A keyed row against its entry: present, a new revision, or a revert (kept back)."""
+    views = [EntryView.of(r) for r in entry.revisions]
+    head = views[-1]
+    contents = [parse_row(v.cells).content for v in views]
+    changes = {
+        name: {"from": head.cells.get(name), "to": row.cells.get(name)}
+        for name in sorted(set(contents[-1]) | set(row.content))
+        if contents[-1].get(name) != row.content.get(name)
+    }
+    if not changes:
+        return RowPlan(row.row, "present", entry.id, head.revision)
+    older = [v.revision for v, c in zip(views, contents, strict=True) if c == row.content]
+    if older and not allow_revert:
+        return RowPlan(
+            row.row, "not_reverted", entry.id, older[-1], changes,
+            f"the row is revision {older[-1]}; the entry is at revision {head.revision}",
+        )  # fmt: skip
+    return RowPlan(row.row, "revise", entry.id, head.revision + 1, changes)
 
 
 class Ledger:
@@ -320,30 +386,35 @@ class Ledger:
 
     # entries -------------------------------------------------------------------------------
 
-    def import_sheet(self, path: str | Path, *, dry_run: bool = False) -> ImportReport:
-        """Import every row of an extraction sheet, or none: one bad row writes nothing.
+    def import_sheet(
+        self,
+        path: str | Path,
+        *,
+        dry_run: bool = False,
+        decimal_comma: bool = False,
+        reason: str | None = None,
+        allow_revert: bool = False,
+        create_sources: bool = False,
+    ) -> ImportReport:
+        """Import an extraction sheet, every row or none: one bad row writes nothing.
 
-        A row already in the registry (same cells, from any sheet) is skipped and counted.
+        A row is matched to an entry by its `row_key` when it has one, else by its identity
+        (`sheets.identity`: canonical numbers, source, study, quantity, measure) against every
+        stored revision. A keyed row whose cells differ from its entry's current revision
+        adds a revision (`reason`, else "re-imported from FILE"); one that equals an older
+        revision is left alone (`not_reverted`) unless `allow_revert`. A source key not in
+        the registry is an error unless `create_sources`.
         """
         path = Path(path)
-        rows = read_sheet(path)
+        rows = read_sheet(path, decimal_comma=decimal_comma)
+        why = (reason or "").strip()
         with self.transaction(commit=not dry_run) as session:
-            known = set(
-                session.scalars(
-                    select(Entry.fingerprint).where(
-                        Entry.fingerprint.in_([r.fingerprint for r in rows])
-                    )
-                )
-            )
-            fresh, seen = [], set()
-            for row in rows:
-                if row.fingerprint in known or row.fingerprint in seen:
-                    continue
-                seen.add(row.fingerprint)
-                fresh.append(row)
+            plans = self._plan(session, rows, allow_revert)
             new_sources: list[str] = []
             added = []
-            if fresh:  # a sheet with nothing new leaves no trace at all
+            fresh = [r for r, p in zip(rows, plans, strict=True) if p.action == "add"]
+            record = None
+            if fresh:  # a sheet with nothing new leaves no import record
                 record = ImportRecord(
                     kind="sheet",
                     path=str(path),
@@ -352,32 +423,104 @@ class Ledger:
                     skipped=len(rows) - len(fresh),
                 )
                 session.add(record)
-            for row in fresh:
-                source = self._source_for(session, row, str(path), new_sources)
-                entry = Entry(fingerprint=row.fingerprint, origin=record, row=row.row)
-                session.add(entry)
-                session.flush()
-                self._add_revision(
-                    session, entry.id, 1, row, source, f"imported from {path.name} row {row.row}"
-                )
-                added.append(entry.id)
+            for row, plan in zip(rows, plans, strict=True):
+                if plan.action not in ("add", "revise"):
+                    continue
+                source = self._source_for(session, row, str(path), new_sources, create_sources)
+                if plan.action == "add":
+                    entry = Entry(
+                        fingerprint=row.fingerprint, row_key=row.row_key, origin=record, row=row.row
+                    )
+                    session.add(entry)
+                    session.flush()
+                    self._add_revision(
+                        session,
+                        entry.id,
+                        1,
+                        row,
+                        source,
+                        f"imported from {path.name} row {row.row}",
+                    )
+                    added.append(entry.id)
+                else:
+                    assert plan.entry is not None and plan.revision is not None
+                    self._add_revision(
+                        session,
+                        plan.entry,
+                        plan.revision,
+                        row,
+                        source,
+                        why or f"re-imported from {path.name} row {row.row}",
+                    )
+        present = sum(p.action == "present" for p in plans)
         return ImportReport(
             str(path),
             len(rows),
             () if dry_run else tuple(added),
-            len(rows) - len(fresh),
+            present,
             tuple(new_sources),
             dry_run,
             tuple(fresh),
+            tuple(plans),
         )
 
     @staticmethod
-    def _source_for(session: Session, row: SheetRow, where: str, new: list[str]) -> Source:
+    def _plan(session: Session, rows: Sequence[SheetRow], allow_revert: bool) -> list[RowPlan]:
+        """Decide, row by row, whether a sheet row adds, revises or is already present."""
+        keyed = {
+            key: entry_id
+            for key, entry_id in session.execute(
+                select(Entry.row_key, Entry.id).where(
+                    Entry.row_key.in_([r.row_key for r in rows if r.row_key])
+                )
+            )
+        }
+        known = dict(
+            session.execute(
+                select(EntryRevision.identity, EntryRevision.entry_id).where(
+                    EntryRevision.identity.in_([r.fingerprint for r in rows])
+                )
+            ).all()
+        )
+        plans, seen = [], {}
+        for row in rows:
+            if row.row_key in keyed:
+                entry = session.get(Entry, keyed[row.row_key])
+                assert entry is not None
+                plans.append(_keyed_plan(row, entry, allow_revert))
+            elif row.fingerprint in known:
+                entry_id = known[row.fingerprint]
+                plans.append(RowPlan(row.row, "present", entry_id, _head_of(session, entry_id)))
+                if row.row_key:  # a key given to a row imported before it had one
+                    entry = session.get(Entry, entry_id)
+                    if entry is not None and entry.row_key is None:
+                        entry.row_key = row.row_key
+            elif row.fingerprint in seen:
+                plans.append(
+                    RowPlan(row.row, "present", note=f"same as row {seen[row.fingerprint]}")
+                )
+            else:
+                seen[row.fingerprint] = row.row
+                plans.append(RowPlan(row.row, "add"))
+        return plans
+
+    @staticmethod
+    def _source_for(
+        session: Session, row: SheetRow, where: str, new: list[str], create: bool = False
+    ) -> Source:
         source = session.scalar(select(Source).where(Source.key == row.source))
         info: dict[str, object] = dict(row.source_info)
         if "year" in info:
             info["year"] = int(str(info["year"]))
         if source is None:
+            if not create:
+                raise InputError(
+                    f"no source with key {row.source!r}: import its reference with "
+                    "`sources import` first, or give --create-sources",
+                    field="source",
+                    row=row.row,
+                    path=where,
+                )
             source = Source(key=row.source, **info)
             session.add(source)
             session.flush()
@@ -407,6 +550,7 @@ class Ledger:
             se=row.derived.se,
             scale=row.derived.scale,
             conversion=row.derived.conversion,
+            identity=row.fingerprint,
             corrections=list(row.derived.corrections),
             context=row.context,
             extra=row.extra,
@@ -464,7 +608,7 @@ class Ledger:
                 raise NotFoundError(f"no entry with id {entry_id}")
             views = tuple(EntryView.of(r) for r in entry.revisions)
             origin = f"{entry.origin.path} row {entry.row}" if entry.origin else None
-            return EntryHistory(views[-1], views, origin)
+            return EntryHistory(views[-1], views, origin, entry.row_key)
 
     def revision(self, entry_id: int, revision: int) -> EntryView:
         with self._sessions() as session:
@@ -497,7 +641,7 @@ class Ledger:
         cells = {k: v for k, v in cells.items() if v != ""}
         if "citation" in cells or "doi" in cells or "year" in cells:
             raise InputError(
-                "sources are corrected by `sources import`, not on an entry",
+                "sources are corrected by `sources edit`, not on an entry",
                 field=next(k for k in ("citation", "doi", "year") if k in cells),
                 path=where,
             )
@@ -505,7 +649,7 @@ class Ledger:
             row = parse_row(cells)
         except InputError as error:
             raise error.located(path=where) from None
-        if row.fingerprint == parse_row(current.cells).fingerprint:
+        if row.content == parse_row(current.cells).content:
             raise InputError("the changes leave the entry as it is", field="--set", path=where)
         with self.transaction() as session:
             source = session.scalar(select(Source).where(Source.key == row.source))
