@@ -66,7 +66,7 @@ def test_decimal_comma_only_when_asked() -> None:
     comma = parse_row(cells, decimal_comma=True)
     plain = parse_row({**cells, "estimate": "0.15", "lower": "0.10", "upper": "0.21"})
     assert comma.derived == plain.derived and comma.fingerprint == plain.fingerprint
-    with pytest.raises(InputError, match="no '.'"):
+    with pytest.raises(InputError, match=r"no '\.'"):
         parse_row({**cells, "estimate": "0.15"}, decimal_comma=True)
 
 
@@ -128,7 +128,7 @@ def test_correction_revises_and_the_old_file_does_not_revert(
 ) -> None:
     old = write_sheet(tmp_path / "v1.csv", HEADER, *ROWS)
     (e1, e2) = ledger.import_sheet(old, create_sources=True).added
-    fixed_rows = [ROWS[0][:5] + ["-5.2", "-0.8", "Table 2"], ROWS[1]]
+    fixed_rows = [[*ROWS[0][:5], "-5.2", "-0.8", "Table 2"], ROWS[1]]
     fixed = write_sheet(tmp_path / "v2.csv", HEADER, *fixed_rows)
     dry = ledger.import_sheet(fixed, dry_run=True)
     assert [(p.row, p.entry, p.revision) for p in dry.planned("revise")] == [(2, e1, 2)]
@@ -155,7 +155,7 @@ def test_dry_run_json_lists_each_kind_of_row(cli, db_path: Path, tmp_path: Path)
     old = write_sheet(tmp_path / "v1.csv", HEADER, *ROWS)
     assert cli("import", old, "--create-sources", "--db", db_path).code == 0
     assert cli("import", write_sheet(tmp_path / "v2.csv", HEADER,
-               ROWS[0][:5] + ["-5.2", "-0.8", "Table 2"]), "--db", db_path).code == 0  # fmt: skip
+               [*ROWS[0][:5], "-5.2", "-0.8", "Table 2"]), "--db", db_path).code == 0  # fmt: skip
     new_row = ["r3", "lee2011", "effect-12m", "mean_difference", "-1", "-2", "0", ""]
     sheet = write_sheet(tmp_path / "v3.csv", HEADER, ROWS[0], ROWS[1], new_row)
     result = cli("import", sheet, "--dry-run", "--json", "--db", db_path)
@@ -164,10 +164,10 @@ def test_dry_run_json_lists_each_kind_of_row(cli, db_path: Path, tmp_path: Path)
     assert [r["row"] for r in doc["rows_add"]] == [4]
     assert [r["row"] for r in doc["rows_present"]] == [3]
     assert doc["rows_not_reverted"][0]["changes"]["lower"] == {"from": "-5.2", "to": "-5.10"}
-    fixed = write_sheet(tmp_path / "v4.csv", HEADER, ROWS[0][:5] + ["-5.3", "-0.8", "T2"])
+    fixed = write_sheet(tmp_path / "v4.csv", HEADER, [*ROWS[0][:5], "-5.3", "-0.8", "T2"])
     doc = json.loads(cli("import", fixed, "--dry-run", "--json", "--db", db_path).stdout)
-    assert doc["rows_revise"] == [{"row": 2, "entry": 1, "revision": 3, "changes": {
-        "lower": {"from": "-5.2", "to": "-5.3"}, "notes": {"from": "Table 2", "to": "T2"}}}]  # fmt: skip
+    changes = {"lower": {"from": "-5.2", "to": "-5.3"}, "notes": {"from": "Table 2", "to": "T2"}}
+    assert doc["rows_revise"] == [{"row": 2, "entry": 1, "revision": 3, "changes": changes}]
 
 
 def test_unknown_source_is_an_error_unless_asked(cli, db_path: Path, tmp_path: Path) -> None:
