@@ -213,3 +213,58 @@ def test_a_registry_from_before_row_identity_keeps_its_rows(tmp_path: Path) -> N
     xlsx = write_xlsx(tmp_path / "s.xlsx", unkeyed, [ROWS[0][1:]])
     report = ledger.import_sheet(xlsx)
     assert report.added == () and [p.entry for p in report.planned("present")] == [1]
+
+
+BIB = r"""@article{muller2019,
+  author = {M{\"u}ller, Anna and {\'O}lafsson, Jon},
+  title = {Falls {\&} balance in {O}lder adults},
+  journal = {Invented Journal of Tests},
+  year = {2019}
+}
+
+@article{lee2011,
+  author = {Lee, K},
+  title = {An invented trial},
+  year = {2011}
+}
+"""
+
+
+def test_bibtex_is_decoded_to_unicode(ledger: Ledger, tmp_path: Path) -> None:
+    bib = tmp_path / "refs.bib"
+    bib.write_text(BIB.replace("{\\&}", "\\&"), encoding="utf-8")
+    ledger.import_sources(bib)
+    source = next(s for s in ledger.sources() if s.key == "muller2019")
+    assert source.authors == "Müller, Anna; Ólafsson, Jon"
+    assert source.title == "Falls & balance in Older adults"
+
+
+def test_duplicate_bibtex_keys_name_both_lines(tmp_path: Path) -> None:
+    from registry.evidence.bibliography import read_bibliography
+
+    bib = tmp_path / "refs.bib"
+    bib.write_text(BIB + BIB.split("\n\n")[1] + "\n", encoding="utf-8")
+    with pytest.raises(InputError, match="'lee2011' appears twice: on line 8 and on line 13"):
+        read_bibliography(bib)
+
+
+def test_sources_are_edited_and_updated_as_revisions(cli, db_path: Path, tmp_path: Path) -> None:
+    bib = tmp_path / "refs.bib"
+    bib.write_text(BIB, encoding="utf-8")
+    assert cli("sources", "import", bib, "--db", db_path).code == 0
+    edited = cli("sources", "edit", "lee2011", "--set", "year=2012", "--set", "journal=J Inv",
+                 "--reason", "online first in 2011", "--db", db_path)  # fmt: skip
+    assert edited.code == 0
+    refused = cli("sources", "import", bib, "--db", db_path)
+    assert refused.code == 2 and "--update" in refused.stderr
+    assert cli("sources", "import", bib, "--update", "--db", db_path).code == 0
+    doc = json.loads(cli("sources", "show", "lee2011", "--json", "--db", db_path).stdout)
+    assert [(r["revision"], r["fields"]["year"], r["reason"]) for r in doc["revisions"]] == [
+        (1, 2011, "as first recorded"),
+        (2, 2012, "online first in 2011"),
+        (3, 2011, "updated from refs.bib"),
+    ]
+    assert doc["revisions"][1]["fields"]["journal"] == "J Inv"
+    assert doc["revisions"][2]["fields"]["journal"] == "J Inv"  # the file has none: kept
+    bad = cli("sources", "edit", "lee2011", "--set", "pages=3", "--reason", "x", "--db", db_path)
+    assert bad.code == 2 and "'pages'" in bad.stderr

@@ -126,6 +126,18 @@ def sources_import(
     file: Annotated[
         Path, typer.Argument(metavar="FILE", help="Bibliography, .bib (BibTeX) or .ris (RIS).")
     ],
+    update: Annotated[
+        bool,
+        typer.Option(
+            "--update", help="Take changed metadata from the file as new source revisions."
+        ),
+    ] = False,
+    reason: Annotated[
+        str | None,
+        typer.Option(
+            "--reason", metavar="TEXT", help='Why, with --update (default "updated from FILE").'
+        ),
+    ] = None,
     db: DbOption = None,
     as_json: JsonOption = False,
 ) -> None:
@@ -133,14 +145,64 @@ def sources_import(
 
     Example: priorledger sources import refs.bib
     """
-    report = ledger(db).import_sources(file)
+    report = ledger(db).import_sources(file, update=update, reason=reason)
     if as_json:
         print_json(report.to_dict())
         return
     err.print(
         f"{file}: {len(report.added)} sources added, {len(report.completed)} completed, "
-        f"{report.unchanged} unchanged"
+        f"{len(report.updated)} updated, {report.unchanged} unchanged"
     )
+
+
+@sources_app.command("edit")
+def sources_edit(
+    key: Annotated[str, typer.Argument(metavar="KEY", help="Citation key of the source.")],
+    set_: Annotated[
+        list[str],
+        typer.Option(
+            "--set",
+            metavar="FIELD=VALUE",
+            help="title, authors, journal, doi, year or citation; empty VALUE clears. Repeatable.",
+        ),
+    ],
+    reason: Annotated[str, typer.Option("--reason", metavar="TEXT", help="Why it is changed.")],
+    db: DbOption = None,
+    as_json: JsonOption = False,
+) -> None:
+    """Correct a source's metadata as a new revision; earlier values are kept.
+
+    Example: priorledger sources edit smith2019 --set year=2020 --reason "online first 2019"
+    """
+    view = ledger(db).edit_source(key, _parse_set(set_), reason)
+    if as_json:
+        print_json(view.to_dict())
+        return
+    err.print(f"source {key} updated: {view.citation or ''}")
+
+
+@sources_app.command("show")
+def sources_show(
+    key: Annotated[str, typer.Argument(metavar="KEY", help="Citation key of the source.")],
+    db: DbOption = None,
+    as_json: JsonOption = False,
+) -> None:
+    """Show a source's metadata revisions, oldest first, with their reasons.
+
+    Example: priorledger sources show smith2019
+    """
+    history = ledger(db).source_history(key)
+    if as_json:
+        print_json({"key": key, "revisions": history})
+        return
+    if not history:
+        out.print(f"source {key} has not been edited since it was recorded")
+        return
+    table = make_table("rev", "when", "reason", "fields")
+    for r in history:
+        fields = "; ".join(f"{k}={v}" for k, v in r["fields"].items() if v is not None)
+        table.add_row(str(r["revision"]), r["created_at"][:19], r["reason"], fields)
+    out.print(table)
 
 
 @sources_app.command("retract")

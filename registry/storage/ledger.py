@@ -26,6 +26,7 @@ from registry.storage.models import (
     EntryTag,
     ImportRecord,
     Source,
+    SourceRevision,
     Study,
 )
 
@@ -223,6 +224,7 @@ class SourceImportReport:
     added: tuple[str, ...]
     completed: tuple[str, ...]
     unchanged: int
+    updated: tuple[str, ...] = ()
 
     def to_dict(self) -> dict[str, Any]:
         return {
@@ -230,6 +232,7 @@ class SourceImportReport:
             "added": list(self.added),
             "completed": list(self.completed),
             "unchanged": self.unchanged,
+            "updated": list(self.updated),
         }
 
 
@@ -248,6 +251,52 @@ def _head_revisions():  # type: ignore[no-untyped-def]
         latest,
         (EntryRevision.entry_id == latest.c.entry_id) & (EntryRevision.revision == latest.c.rev),
     )
+
+
+SOURCE_METADATA = ("citation", "title", "authors", "journal", "doi", "year")
+
+
+def _source_value(name: str, value: str, where: str) -> object:
+    text = value.strip()
+    if not text:
+        return None
+    if name != "year":
+        return text
+    if not text.isdigit() or len(text) != 4:
+        raise InputError(f"must be a four-digit year, got {value!r}", field=name, path=where)
+    return int(text)
+
+
+def _revise_source(
+    session: Session, source: Source, changes: Mapping[str, object], reason: str
+) -> None:
+    """Apply `changes` to a source, keeping its metadata before and after as revisions."""
+    last = session.scalar(
+        select(func.max(SourceRevision.revision)).where(SourceRevision.source_id == source.id)
+    )
+    if last is None:  # first edit: keep what was recorded until now
+        session.add(
+            SourceRevision(
+                source_id=source.id,
+                revision=1,
+                fields=_metadata(source),
+                reason="as first recorded",
+                created_at=source.created_at,
+            )
+        )
+        last = 1
+    for name, value in changes.items():
+        setattr(source, name, value)
+    session.add(
+        SourceRevision(
+            source_id=source.id, revision=last + 1, fields=_metadata(source), reason=reason
+        )
+    )
+    session.flush()
+
+
+def _metadata(source: Source) -> dict[str, object]:
+    return {name: getattr(source, name) for name in SOURCE_METADATA}
 
 
 def _head_of(session: Session, entry_id: int) -> int | None:
@@ -304,21 +353,37 @@ class Ledger:
 
     # sources -------------------------------------------------------------------------------
 
-    def import_sources(self, path: str | Path) -> SourceImportReport:
+    def import_sources(
+        self, path: str | Path, *, update: bool = False, reason: str | None = None
+    ) -> SourceImportReport:
         """Add a bibliography's references; fill in fields a stub source lacks.
 
         A reference whose key exists with a different value for a field already set is an
-        error: a source is corrected deliberately, not by re-importing.
+        error unless `update`: then the source's metadata takes the file's values as a new
+        source revision (`reason`, else "updated from FILE"), the old values kept.
         """
         path = Path(path)
         records = read_bibliography(path)
-        added, completed, unchanged = [], [], 0
+        added, completed, updated, unchanged = [], [], [], 0
+        why = (reason or "").strip() or f"updated from {path.name}"
         with self.transaction() as session:
             for record in records:
                 source = session.scalar(select(Source).where(Source.key == record.key))
                 if source is None:
                     session.add(Source(key=record.key, **record.fields()))
                     added.append(record.key)
+                    continue
+                if update:
+                    differ = {
+                        k: v
+                        for k, v in record.fields().items()
+                        if str(getattr(source, k)) != str(v)
+                    }
+                    if differ:
+                        _revise_source(session, source, differ, why)
+                        updated.append(record.key)
+                    else:
+                        unchanged += 1
                     continue
                 changes = self._merge_source(source, record.fields(), str(path), record.key)
                 if changes:
@@ -334,7 +399,9 @@ class Ledger:
                     skipped=unchanged,
                 )
             )
-        return SourceImportReport(str(path), tuple(added), tuple(completed), unchanged)
+        return SourceImportReport(
+            str(path), tuple(added), tuple(completed), unchanged, tuple(updated)
+        )
 
     @staticmethod
     def _merge_source(
@@ -348,12 +415,62 @@ class Ledger:
                 changed = True
             elif str(current) != str(value) and name != "citation":
                 raise InputError(
-                    f"source {key!r} already has {name} {current!r}, not {value!r}",
+                    f"source {key!r} already has {name} {current!r}, not {value!r}; "
+                    "`sources edit` or `sources import --update` records a revision",
                     field=name,
                     row=row,
                     path=where,
                 )
         return changed
+
+    def edit_source(self, key: str, changes: Mapping[str, str], reason: str) -> SourceView:
+        """Change a source's metadata as a new source revision; an empty value clears a field.
+
+        The values before the first edit are kept as revision 1, so nothing is lost.
+        """
+        where = f"source {key}"
+        if not reason.strip():
+            raise InputError("an edit needs a reason", field="--reason", path=where)
+        if not changes:
+            raise InputError("give at least one --set FIELD=VALUE", field="--set", path=where)
+        values: dict[str, object] = {}
+        for name, value in changes.items():
+            if name not in SOURCE_METADATA:
+                raise InputError(
+                    f"not a field of a source; one of {', '.join(SOURCE_METADATA)}",
+                    field=name,
+                    path=where,
+                )
+            values[name] = _source_value(name, value, where)
+        with self.transaction() as session:
+            source = session.scalar(select(Source).where(Source.key == key))
+            if source is None:
+                raise NotFoundError(f"no source with key {key!r}")
+            differ = {k: v for k, v in values.items() if getattr(source, k) != v}
+            if not differ:
+                raise InputError("the changes leave the source as it is", field="--set", path=where)
+            _revise_source(session, source, differ, reason.strip())
+            return SourceView.of(source)
+
+    def source_history(self, key: str) -> list[dict[str, Any]]:
+        """Every recorded version of a source's metadata, oldest first (empty if never edited)."""
+        with self._sessions() as session:
+            source = session.scalar(select(Source).where(Source.key == key))
+            if source is None:
+                raise NotFoundError(f"no source with key {key!r}")
+            return [
+                {
+                    "revision": r.revision,
+                    "fields": dict(r.fields),
+                    "reason": r.reason,
+                    "created_at": r.created_at.isoformat(),
+                }
+                for r in session.scalars(
+                    select(SourceRevision)
+                    .where(SourceRevision.source_id == source.id)
+                    .order_by(SourceRevision.revision)
+                )
+            ]
 
     def sources(self) -> list[SourceView]:
         with self._sessions() as session:
