@@ -246,3 +246,27 @@ def test_a_study_reported_twice_must_be_resolved(cli, bcg: Path, tmp_path: Path)
         'quantity = "bcg-tb-risk"', 'quantity = "bcg-tb-risk"\n[select.studies]\n"bcg00" = 1'
     )
     assert cli("build", definition_file(tmp_path, resolved), "--db", bcg).code == 0
+
+
+IDLE_RULE = """
+[[rule]]
+name = "early trials"
+where = { tags = ["early"] }
+population = { level = "minor", why = "older vaccine lots" }
+
+[[rule]]
+name = "typo"
+where = { tags = ["ealry"] }
+population = { level = "serious", why = "a tag that no entry has" }
+"""
+
+
+def test_a_rule_matching_no_entry_is_reported(cli, bcg: Path, tmp_path: Path) -> None:
+    path = definition_file(tmp_path, BASE + IDLE_RULE)
+    built = cli("build", path, "--json", "--db", bcg)
+    assert built.code == 0
+    assert "warning: rule 'typo' matches no selected entry" in built.stderr
+    assert "early trials" not in built.stderr
+    assert "rule 'typo' matches no selected entry" in json.loads(built.stdout)["notes"]
+    strict = cli("build", path, "--strict", "--db", bcg)
+    assert strict.code == 2 and "rule 'typo'" in strict.stderr
