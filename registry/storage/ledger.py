@@ -18,6 +18,7 @@ from sqlalchemy.orm import Session, sessionmaker
 
 from registry.errors import InputError, NotFoundError
 from registry.evidence.bibliography import read_bibliography
+from registry.evidence.elicit import Elicitation, read_elicitation
 from registry.evidence.sheets import COLUMNS, REQUIRED, SheetRow, parse_row, read_sheet
 from registry.storage import db
 from registry.storage.models import (
@@ -524,6 +525,51 @@ class Ledger:
         """
         path = Path(path)
         rows = read_sheet(path, decimal_comma=decimal_comma)
+        return self._import_rows(
+            path,
+            rows,
+            kind="sheet",
+            dry_run=dry_run,
+            reason=reason,
+            allow_revert=allow_revert,
+            create_sources=create_sources,
+        )
+
+    def import_elicitation(
+        self,
+        path: str | Path,
+        *,
+        family: str = "normal",
+        pool: str | None = None,
+        dry_run: bool = False,
+        decimal_comma: bool = False,
+        create_sources: bool = False,
+    ) -> tuple[ImportReport, Elicitation]:
+        """Fit a judgement sheet (`evidence.elicit`) and store one entry per expert and
+        quantity, design `expert`, plus one per pool; fits already stored are not added again.
+        """
+        path = Path(path)
+        elicitation = read_elicitation(path, family=family, pool=pool, decimal_comma=decimal_comma)
+        report = self._import_rows(
+            path,
+            elicitation.rows(),
+            kind="elicitation",
+            dry_run=dry_run,
+            create_sources=create_sources,
+        )
+        return report, elicitation
+
+    def _import_rows(
+        self,
+        path: Path,
+        rows: Sequence[SheetRow],
+        *,
+        kind: str,
+        dry_run: bool,
+        reason: str | None = None,
+        allow_revert: bool = False,
+        create_sources: bool = False,
+    ) -> ImportReport:
         why = (reason or "").strip()
         with self.transaction(commit=not dry_run) as session:
             plans = self._plan(session, rows, allow_revert)
@@ -533,7 +579,7 @@ class Ledger:
             record = None
             if fresh:  # a sheet with nothing new leaves no import record
                 record = ImportRecord(
-                    kind="sheet",
+                    kind=kind,
                     path=str(path),
                     sha256=_sha256(path),
                     added=len(fresh),
