@@ -119,3 +119,52 @@ def test_non_increasing_judgements_exit_2_naming_the_row(
     result = cli("elicit", judgement_sheet(tmp_path / "j.csv", rows), "--db", db_path)
     assert result.code == 2
     assert "row 3, column 'value'" in result.stderr and "Traceback" not in result.stderr
+
+
+DEFINITION = """
+name = "panel"
+parameter = "an invented mean difference"
+target = "mean"
+[select]
+quantity = "q"
+exclude_tags = ["expert-pool"]
+[pool]
+method = "common"
+[discount]
+mechanism = "power"
+[output]
+unit_sd = 1.0
+ess_unit = "participants"
+"""
+EXPERT_RULE = """
+[[rule]]
+name = "elicited"
+where = { design = "expert" }
+population = { level = "serious", why = "experts judged another population" }
+"""
+
+
+def test_expert_entries_are_rated_and_discounted(tmp_path: Path) -> None:
+    from registry.priors.build import construct
+    from registry.priors.definition import parse_definition
+    from registry.priors.store import select_entries
+
+    experts = {"a": stats.norm(-0.4, 0.2), "b": stats.norm(0.1, 0.35)}
+    rows = [r for name, dist in experts.items() for r in expert_rows(name, dist, "mean_difference")]
+    ledger = Ledger.open(str(tmp_path / "r.db"))
+    ledger.import_elicitation(
+        judgement_sheet(tmp_path / "j.csv", rows), pool="linear", create_sources=True
+    )
+    plain = parse_definition(DEFINITION)
+    rated = parse_definition(DEFINITION + EXPERT_RULE)
+    entries = select_entries(ledger, rated)
+    assert [e.extra["x_expert"] for e in entries] == ["a", "b"]  # the pool is left out
+    built = construct(rated, entries)
+    for r in built.rated:
+        population = next(x for x in r.ratings if x.domain == "population")
+        assert (population.level, population.rule) == ("serious", "rule: elicited")
+        assert r.discount.power < 1
+    (undiscounted,) = construct(plain, entries).components
+    (discounted,) = built.components
+    assert discounted.params["scale"] > undiscounted.params["scale"]
+    assert not any("elicited" in w for w in built.result.warnings)

@@ -8,7 +8,9 @@ from typing import Annotated
 import typer
 
 from registry.cli.common import (
+    CreateSourcesOption,
     DbOption,
+    DecimalCommaOption,
     JsonOption,
     err,
     ledger,
@@ -42,14 +44,8 @@ def elicit(
     dry_run: Annotated[
         bool, typer.Option("--dry-run", help="Fit and report; write nothing.")
     ] = False,
-    decimal_comma: Annotated[
-        bool,
-        typer.Option("--decimal-comma", help="Numbers are written with a decimal comma (0,15)."),
-    ] = False,
-    create_sources: Annotated[
-        bool,
-        typer.Option("--create-sources", help="Create a bare source for an unknown source key."),
-    ] = False,
+    decimal_comma: DecimalCommaOption = False,
+    create_sources: CreateSourcesOption = False,
     db: DbOption = None,
     as_json: JsonOption = False,
 ) -> None:

@@ -9,10 +9,13 @@ import typer
 from rich.text import Text
 
 from registry.cli.common import (
+    CreateSourcesOption,
     DbOption,
+    DecimalCommaOption,
     JsonOption,
     MeasureOption,
     QuantityOption,
+    SetOption,
     SourceOption,
     TagOption,
     err,
@@ -47,10 +50,7 @@ def import_sheet(
     dry_run: Annotated[
         bool, typer.Option("--dry-run", help="Check and report; write nothing.")
     ] = False,
-    decimal_comma: Annotated[
-        bool,
-        typer.Option("--decimal-comma", help="Numbers are written with a decimal comma (0,15)."),
-    ] = False,
+    decimal_comma: DecimalCommaOption = False,
     reason: Annotated[
         str | None,
         typer.Option(
@@ -65,10 +65,7 @@ def import_sheet(
             "--allow-revert", help="Let a row equal to an older revision become the newest."
         ),
     ] = False,
-    create_sources: Annotated[
-        bool,
-        typer.Option("--create-sources", help="Create a bare source for an unknown source key."),
-    ] = False,
+    create_sources: CreateSourcesOption = False,
     db: DbOption = None,
     as_json: JsonOption = False,
 ) -> None:
@@ -158,19 +155,14 @@ def sources_import(
 @sources_app.command("edit")
 def sources_edit(
     key: Annotated[str, typer.Argument(metavar="KEY", help="Citation key of the source.")],
-    set_: Annotated[
-        list[str],
-        typer.Option(
-            "--set",
-            metavar="FIELD=VALUE",
-            help="title, authors, journal, doi, year or citation; empty VALUE clears. Repeatable.",
-        ),
-    ],
+    set_: SetOption,
     reason: Annotated[str, typer.Option("--reason", metavar="TEXT", help="Why it is changed.")],
     db: DbOption = None,
     as_json: JsonOption = False,
 ) -> None:
     """Correct a source's metadata as a new revision; earlier values are kept.
+
+    FIELD is title, authors, journal, doi, year or citation.
 
     Example: priorledger sources edit smith2019 --set year=2020 --reason "online first 2019"
     """
@@ -325,14 +317,7 @@ def _parse_set(values: list[str]) -> dict[str, str]:
 
 def revise(
     entry_id: Annotated[int, typer.Argument(metavar="ID", help="Entry id.")],
-    set_: Annotated[
-        list[str],
-        typer.Option(
-            "--set",
-            metavar="FIELD=VALUE",
-            help="FIELD=VALUE; an empty VALUE clears the field. Repeatable.",
-        ),
-    ],
+    set_: SetOption,
     reason: Annotated[
         str, typer.Option("--reason", metavar="TEXT", help="Why the entry is corrected.")
     ],

@@ -800,6 +800,12 @@ class Ledger:
             if name in REQUIRED and not changes[name]:
                 raise InputError("a required value cannot be cleared", field=name, path=where)
         current = self.entry(entry_id).current
+        if current.context.get("design") == "expert" and "x_expert" in current.extra:
+            raise InputError(
+                "an elicited entry is fitted from its judgement sheet: correct the sheet and "
+                "run `elicit` again",
+                path=where,
+            )
         cells = {**current.cells, **changes}
         cells = {k: v for k, v in cells.items() if v != ""}
         if "citation" in cells or "doi" in cells or "year" in cells:
