@@ -14,7 +14,7 @@ from pathlib import Path
 from typing import Any
 
 from sqlalchemy import Engine, func, select
-from sqlalchemy.orm import Session, sessionmaker
+from sqlalchemy.orm import Session, selectinload, sessionmaker
 
 from registry.errors import InputError, NotFoundError
 from registry.evidence.bibliography import read_bibliography
@@ -298,12 +298,6 @@ def _revise_source(
 
 def _metadata(source: Source) -> dict[str, object]:
     return {name: getattr(source, name) for name in SOURCE_METADATA}
-
-
-def _head_of(session: Session, entry_id: int) -> int | None:
-    return session.scalar(
-        select(func.max(EntryRevision.revision)).where(EntryRevision.entry_id == entry_id)
-    )
 
 
 def _keyed_plan(row: SheetRow, entry: Entry, allow_revert: bool) -> RowPlan:
@@ -629,31 +623,48 @@ class Ledger:
 
     @staticmethod
     def _plan(session: Session, rows: Sequence[SheetRow], allow_revert: bool) -> list[RowPlan]:
-        """Decide, row by row, whether a sheet row adds, revises or is already present."""
+        """Decide, row by row, whether a sheet row adds, revises or is already present.
+
+        Entries and revisions are read in a few queries for the whole sheet, not per row.
+        """
         keyed = {
-            key: entry_id
-            for key, entry_id in session.execute(
-                select(Entry.row_key, Entry.id).where(
-                    Entry.row_key.in_([r.row_key for r in rows if r.row_key])
+            e.row_key: e
+            for e in session.scalars(
+                select(Entry)
+                .where(Entry.row_key.in_([r.row_key for r in rows if r.row_key]))
+                .options(
+                    selectinload(Entry.revisions).options(
+                        selectinload(EntryRevision.source),
+                        selectinload(EntryRevision.study),
+                        selectinload(EntryRevision.tags),
+                    )
                 )
             )
         }
-        known = dict(
+        known = {
+            identity: (entry_id, revision)
+            for identity, entry_id, revision in session.execute(
+                select(EntryRevision.identity, EntryRevision.entry_id, EntryRevision.revision)
+                .where(EntryRevision.identity.in_([r.fingerprint for r in rows]))
+                .order_by(EntryRevision.revision)  # the latest revision with an identity wins
+            )
+        }
+        heads = dict(
             session.execute(
-                select(EntryRevision.identity, EntryRevision.entry_id).where(
-                    EntryRevision.identity.in_([r.fingerprint for r in rows])
-                )
+                select(EntryRevision.entry_id, func.max(EntryRevision.revision))
+                .where(EntryRevision.entry_id.in_([e for e, _ in known.values()]))
+                .group_by(EntryRevision.entry_id)
             ).all()
         )
         plans, seen = [], {}
         for row in rows:
             if row.row_key in keyed:
-                entry = session.get(Entry, keyed[row.row_key])
-                assert entry is not None
-                plans.append(_keyed_plan(row, entry, allow_revert))
+                plans.append(_keyed_plan(row, keyed[row.row_key], allow_revert))
             elif row.fingerprint in known:
-                entry_id = known[row.fingerprint]
-                plans.append(RowPlan(row.row, "present", entry_id, _head_of(session, entry_id)))
+                entry_id, revision = known[row.fingerprint]
+                later = heads[entry_id] > revision
+                note = f"the entry is now at revision {heads[entry_id]}" if later else ""
+                plans.append(RowPlan(row.row, "present", entry_id, revision, note=note))
                 if row.row_key:  # a key given to a row imported before it had one
                     entry = session.get(Entry, entry_id)
                     if entry is not None and entry.row_key is None:
