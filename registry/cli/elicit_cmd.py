@@ -84,4 +84,8 @@ def elicit(
         table.add_row("linear pool", p.members[0].quantity, "mixture", number(p.mean),
                       number(p.sd), "", "")  # fmt: skip
     out.print(table)
-    err.print(report.message)
+    add = "would add" if dry_run else "added"
+    err.print(
+        f"{sheet}: {len(elicitation.fits)} expert fits, {len(elicitation.pools)} pools; "
+        f"{add} {len(report.planned('add'))} entries, {report.skipped} already in the registry"
+    )
