@@ -168,3 +168,13 @@ def test_expert_entries_are_rated_and_discounted(tmp_path: Path) -> None:
     (discounted,) = built.components
     assert discounted.params["scale"] > undiscounted.params["scale"]
     assert not any("elicited" in w for w in built.result.warnings)
+
+
+def test_gamma_judgements_recover_its_parameters() -> None:
+    """Four quantiles of scipy's gamma(a=3, scale=0.5)."""
+    truth = stats.gamma(a=3.0, scale=0.5)
+    levels = (0.1, 0.4, 0.6, 0.9)
+    params, mean, sd, rms, _ = fit_judgements(levels, [truth.ppf(p) for p in levels], "gamma")
+    assert params == pytest.approx({"a": 3.0, "scale": 0.5}, rel=1e-7)
+    assert (mean, sd) == pytest.approx((truth.mean(), truth.std()), rel=1e-7)
+    assert rms < 1e-9

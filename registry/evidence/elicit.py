@@ -46,14 +46,21 @@ POOLS = ("linear",)
 
 @dataclass(frozen=True)
 class _Family:
-    """A distribution fitted on the analysis scale: scipy's frozen distribution from an
-    unconstrained parameter vector, a start from the judgements, and scipy-style names."""
+    """A distribution fitted on the analysis scale: its scipy name, its scipy-style
+    parameters from an unconstrained vector (logs of positive parameters), and a start."""
 
-    names: tuple[str, ...]
-    make: Callable[[Sequence[float]], Any]
-    start: Callable[[Sequence[float], Sequence[float]], list[float]]
+    scipy_name: str
     params: Callable[[Sequence[float]], dict[str, float]]
+    start: Callable[[Sequence[float], Sequence[float]], list[float]]
     needs_positive: bool = False
+
+    def dist(self, params: dict[str, float]) -> Any:
+        from scipy import stats
+
+        return getattr(stats, self.scipy_name)(**params)
+
+    def make(self, t: Sequence[float]) -> Any:
+        return self.dist(self.params(t))
 
 
 def _line(z: Sequence[float], x: Sequence[float]) -> tuple[float, float]:
@@ -80,46 +87,19 @@ def _lognormal_start(levels: Sequence[float], x: Sequence[float]) -> list[float]
 
 
 def _gamma_start(levels: Sequence[float], x: Sequence[float]) -> list[float]:
+    """Shape and scale matching the normal line's mean and sd (a = m²/s², scale = s²/m)."""
     mean, sd = _line(_z(levels), x)
     shape = (mean / max(sd, 1e-12)) ** 2
     return [math.log(shape), math.log(mean / shape)]
 
 
-def _norm(t: Sequence[float]) -> Any:
-    from scipy import stats
-
-    return stats.norm(loc=t[0], scale=math.exp(t[1]))
-
-
-def _lognorm(t: Sequence[float]) -> Any:
-    from scipy import stats
-
-    return stats.lognorm(s=math.exp(t[1]), scale=math.exp(t[0]))
-
-
-def _gamma(t: Sequence[float]) -> Any:
-    from scipy import stats
-
-    return stats.gamma(a=math.exp(t[0]), scale=math.exp(t[1]))
-
-
 FAMILIES: dict[str, _Family] = {
-    "normal": _Family(
-        ("loc", "scale"), _norm, _normal_start, lambda t: {"loc": t[0], "scale": math.exp(t[1])}
-    ),
+    "normal": _Family("norm", lambda t: {"loc": t[0], "scale": math.exp(t[1])}, _normal_start),
     "lognormal": _Family(
-        ("s", "scale"),
-        _lognorm,
-        _lognormal_start,
-        lambda t: {"s": math.exp(t[1]), "scale": math.exp(t[0])},
-        needs_positive=True,
+        "lognorm", lambda t: {"s": math.exp(t[1]), "scale": math.exp(t[0])}, _lognormal_start, True
     ),
     "gamma": _Family(
-        ("a", "scale"),
-        _gamma,
-        _gamma_start,
-        lambda t: {"a": math.exp(t[0]), "scale": math.exp(t[1])},
-        needs_positive=True,
+        "gamma", lambda t: {"a": math.exp(t[0]), "scale": math.exp(t[1])}, _gamma_start, True
     ),
 }
 
@@ -154,9 +134,7 @@ class ExpertFit:
 
     def frozen(self) -> Any:
         """The fitted distribution on the analysis scale (scipy)."""
-        from scipy import stats
-
-        return getattr(stats, _SCIPY_NAME[self.family])(**self.params)
+        return FAMILIES[self.family].dist(self.params)
 
     def to_dict(self) -> dict[str, Any]:
         return {
@@ -173,9 +151,6 @@ class ExpertFit:
             "max_error": self.max_error,
             "judgements": {repr(j.level): j.text for j in self.judgements},
         }
-
-
-_SCIPY_NAME = {"normal": "norm", "lognormal": "lognorm", "gamma": "gamma"}
 
 
 @dataclass(frozen=True)
