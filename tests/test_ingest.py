@@ -34,6 +34,10 @@ def test_p_as_an_inequality_uses_the_bound_and_says_so() -> None:
     assert row.derived.se == pytest.approx(math.log(2.5) / z, rel=1e-12)
     assert row.derived.conversion == "p_bound_log"
     assert "conservative" in row.derived.corrections[0]
+    for printed in ("p<0.001", "P < 0.001", "≤0.001"):
+        same = parse_row({"source": "a", "quantity": "q", "measure": "odds_ratio",
+                          "estimate": "2.5", "p": printed})  # fmt: skip
+        assert (same.derived, same.fingerprint) == (row.derived, row.fingerprint)
     exact = parse_row({"source": "a", "quantity": "q", "measure": "odds_ratio",
                        "estimate": "2.5", "p": "0.001"})  # fmt: skip
     assert exact.derived.se == row.derived.se and exact.derived.conversion == "p_value_log"

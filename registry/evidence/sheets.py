@@ -170,10 +170,14 @@ def parse_number(
 ) -> tuple[float, bool]:
     """A numeric cell as a number, and whether it is an upper bound (`<0.001`, p only).
 
+    A p-value may keep the printed `p`: `p<0.001`, `P = 0.03`.
+
     `15%` is 0.15 where `PERCENT_FIELDS` allows it; with `decimal_comma`, `0,15` is 0.15 and a
     point is refused (it could be a thousands separator).
     """
     body = text.strip().replace(" ", "")
+    if name == "p":  # as printed: "p<0.001", "P = 0.03"
+        body = re.sub(r"^[pP]=?", "", body)
     bound = body.startswith(("<", "≤"))
     if bound:
         if name != "p":
