@@ -272,3 +272,16 @@ def test_sources_are_edited_and_updated_as_revisions(cli, db_path: Path, tmp_pat
     assert doc["revisions"][2]["fields"]["journal"] == "J Inv"  # the file has none: kept
     bad = cli("sources", "edit", "lee2011", "--set", "pages=3", "--reason", "x", "--db", db_path)
     assert bad.code == 2 and "'pages'" in bad.stderr
+
+
+def test_migration_0004_downgrades_and_upgrades_with_data(ledger: Ledger, tmp_path: Path) -> None:
+    sheet = write_sheet(tmp_path / "s.csv", HEADER, *ROWS)
+    ledger.import_sheet(sheet, create_sources=True)
+    config = db._alembic_config()
+    for step in (command.downgrade, command.upgrade):
+        with ledger.engine.begin() as connection:
+            config.attributes["connection"] = connection
+            step(config, "0002" if step is command.downgrade else "head")
+    assert db.current_revision(ledger.engine) == db.head_revision()
+    report = ledger.import_sheet(write_xlsx(tmp_path / "s.xlsx", HEADER, ROWS))
+    assert report.added == () and report.skipped == 2

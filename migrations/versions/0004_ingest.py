@@ -82,10 +82,9 @@ def upgrade() -> None:
 
 
 def downgrade() -> None:
+    # Plain DROP COLUMN (SQLite 3.35+), for the same reason as in upgrade.
     op.drop_table("source_revisions")
     op.drop_index(op.f("ix_entry_revisions_identity"), table_name="entry_revisions")
+    op.drop_column("entry_revisions", "identity")
     op.drop_index(op.f("ix_entries_row_key"), table_name="entries")
-    with op.batch_alter_table("entry_revisions", schema=None) as batch_op:
-        batch_op.drop_column("identity")
-    with op.batch_alter_table("entries", schema=None) as batch_op:
-        batch_op.drop_column("row_key")
+    op.drop_column("entries", "row_key")
