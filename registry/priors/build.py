@@ -545,7 +545,7 @@ def construct(
         f"rule {name!r} matches no selected entry" for name in unmatched_rules(definition, entries)
     ]
     if idle and strict:
-        raise InputError(f"{idle[0]} (--strict)", field="rule")
+        raise InputError(f"{idle[0]} (--strict)", field="rule", path=definition.path)
     ratings = [rate_entry(e, definition) for e in entries]
     digest = _digest(definition, entries, ratings)
     global_power = definition["discount.global_power"]
