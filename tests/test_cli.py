@@ -78,7 +78,7 @@ def sheet_of(rows: list[dict], path: Path) -> Path:
 
 def test_worked_examples_through_import_and_json(cli, tmp_path: Path, db_path: Path) -> None:
     sheet = sheet_of([r for r, _, _ in WORKED], tmp_path / "worked.csv")
-    assert cli("import", sheet, "--db", db_path).code == 0
+    assert cli("import", sheet, "--create-sources", "--db", db_path).code == 0
     result = cli("entries", "--json", "--db", db_path)
     entries = json.loads(result.stdout)["entries"]
     assert len(entries) == len(WORKED)
@@ -188,7 +188,7 @@ def test_each_validation_rule(cli, tmp_path: Path, db_path: Path, change, column
         [good.get(k, "") for k in header],
         [bad.get(k, "") for k in header],
     )
-    result = cli("import", sheet, "--db", db_path)
+    result = cli("import", sheet, "--create-sources", "--db", db_path)
     assert result.code == 2
     assert result.stdout == ""
     lines = result.stderr.strip().splitlines()
@@ -200,14 +200,14 @@ def test_each_validation_rule(cli, tmp_path: Path, db_path: Path, change, column
 
 def test_import_again_says_nothing_added(cli, tmp_path: Path, db_path: Path) -> None:
     sheet = write_sheet(tmp_path / "s.csv", list(OK_ROW), list(OK_ROW.values()))
-    assert "added 1 entries" in cli("import", sheet, "--db", db_path).stderr
-    again = cli("import", sheet, "--db", db_path)
+    assert "added 1 entries" in cli("import", sheet, "--create-sources", "--db", db_path).stderr
+    again = cli("import", sheet, "--create-sources", "--db", db_path)
     assert again.code == 0 and "nothing added" in again.stderr
 
 
 def test_revise_and_show(cli, tmp_path: Path, db_path: Path) -> None:
     sheet = write_sheet(tmp_path / "s.csv", list(OK_ROW), list(OK_ROW.values()))
-    cli("import", sheet, "--db", db_path)
+    cli("import", sheet, "--create-sources", "--db", db_path)
     assert (
         cli("revise", "1", "--set", "upper=1.2", "--reason", "Table 2", "--db", db_path).code == 0
     )
@@ -224,7 +224,7 @@ def test_revise_and_show(cli, tmp_path: Path, db_path: Path) -> None:
 
 def test_sources_retract_shows_in_listing(cli, tmp_path: Path, db_path: Path) -> None:
     sheet = write_sheet(tmp_path / "s.csv", list(OK_ROW), list(OK_ROW.values()))
-    cli("import", sheet, "--db", db_path)
+    cli("import", sheet, "--create-sources", "--db", db_path)
     assert (
         cli("sources", "retract", "a2020", "--reason", "journal notice", "--db", db_path).code == 0
     )

@@ -135,7 +135,7 @@ def test_user_text_round_trips_verbatim(cli, tmp_path: Path, db_path: Path) -> N
     definition.write_text(DEFINITION)
     db = ("--db", str(db_path))
 
-    assert cli("import", sheet, *db).code == 0
+    assert cli("import", sheet, "--create-sources", *db).code == 0
     built = cli("build", definition, *db)
     assert built.code == 0, built.stderr
     assert PARAMETER in built.stdout

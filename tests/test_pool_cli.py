@@ -32,7 +32,7 @@ def bcg_db(cli, tmp_path: Path) -> Path:
         ["source", "quantity", "measure", "events_a", "total_a", "events_b", "total_b"],
         *rows,
     )
-    assert cli("import", sheet, "--db", db).code == 0
+    assert cli("import", sheet, "--create-sources", "--db", db).code == 0
     return db
 
 

@@ -75,7 +75,7 @@ def bcg(cli, tmp_path: Path) -> Path:
         ],
         *rows,
     )
-    assert cli("import", sheet, "--db", db).code == 0
+    assert cli("import", sheet, "--create-sources", "--db", db).code == 0
     return db
 
 
@@ -239,10 +239,34 @@ def test_a_study_reported_twice_must_be_resolved(cli, bcg: Path, tmp_path: Path)
         ["source", "study", "quantity", "measure", "estimate", "lower", "upper"],
         ["bcg00b", "bcg00", "bcg-tb-risk", "risk_ratio", "0.4", "0.12", "1.2"],
     )
-    cli("import", sheet, "--db", bcg)
+    cli("import", sheet, "--create-sources", "--db", bcg)
     refused = cli("build", definition_file(tmp_path), "--db", bcg)
     assert refused.code == 2 and "select.studies" in refused.stderr
     resolved = BASE.replace(
         'quantity = "bcg-tb-risk"', 'quantity = "bcg-tb-risk"\n[select.studies]\n"bcg00" = 1'
     )
     assert cli("build", definition_file(tmp_path, resolved), "--db", bcg).code == 0
+
+
+IDLE_RULE = """
+[[rule]]
+name = "early trials"
+where = { tags = ["early"] }
+population = { level = "minor", why = "older vaccine lots" }
+
+[[rule]]
+name = "typo"
+where = { tags = ["ealry"] }
+population = { level = "serious", why = "a tag that no entry has" }
+"""
+
+
+def test_a_rule_matching_no_entry_is_reported(cli, bcg: Path, tmp_path: Path) -> None:
+    path = definition_file(tmp_path, BASE + IDLE_RULE)
+    built = cli("build", path, "--json", "--db", bcg)
+    assert built.code == 0
+    assert "warning: rule 'typo' matches no selected entry" in built.stderr
+    assert "early trials" not in built.stderr
+    assert "rule 'typo' matches no selected entry" in json.loads(built.stdout)["notes"]
+    strict = cli("build", path, "--strict", "--db", bcg)
+    assert strict.code == 2 and "rule 'typo'" in strict.stderr

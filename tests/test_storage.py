@@ -56,8 +56,8 @@ def test_import_twice_adds_nothing(ledger: Ledger, tmp_path: Path) -> None:
     sheet = write_sheet(
         tmp_path / "s.csv", HEADER, ["a2020", "q", "rate", 10, 20.0, "x;y", "Table 1"]
     )
-    first = ledger.import_sheet(sheet)
-    second = ledger.import_sheet(sheet)
+    first = ledger.import_sheet(sheet, create_sources=True)
+    second = ledger.import_sheet(sheet, create_sources=True)
     assert len(first.added) == 1 and second.added == () and second.skipped == 1
     assert len(ledger.entries()) == 1
     assert ledger.entries(tags=["x", "y"])[0].context["location"] == "Table 1"
@@ -66,7 +66,7 @@ def test_import_twice_adds_nothing(ledger: Ledger, tmp_path: Path) -> None:
 
 def test_dry_run_writes_nothing(ledger: Ledger, tmp_path: Path) -> None:
     sheet = write_sheet(tmp_path / "s.csv", HEADER, ["a2020", "q", "rate", 10, 20.0, "", ""])
-    report = ledger.import_sheet(sheet, dry_run=True)
+    report = ledger.import_sheet(sheet, dry_run=True, create_sources=True)
     assert len(report.entries) == 1 and report.new_sources == ("a2020",)
     assert ledger.entries() == [] and ledger.sources() == []
 
@@ -79,14 +79,14 @@ def test_one_bad_row_writes_nothing(ledger: Ledger, tmp_path: Path) -> None:
         ["b2021", "q", "rate", 10, -1, "", ""],
     )
     with pytest.raises(InputError) as raised:
-        ledger.import_sheet(sheet)
+        ledger.import_sheet(sheet, create_sources=True)
     assert raised.value.row == 3 and raised.value.field == "exposure"
     assert ledger.entries() == [] and ledger.sources() == []
 
 
 def test_revision_keeps_history_and_rederives(ledger: Ledger, tmp_path: Path) -> None:
     sheet = write_sheet(tmp_path / "s.csv", HEADER, ["a2020", "q", "rate", 10, 20.0, "", ""])
-    (entry_id,) = ledger.import_sheet(sheet).added
+    (entry_id,) = ledger.import_sheet(sheet, create_sources=True).added
     before = ledger.entries()[0]
     after = ledger.revise(entry_id, {"events": "12"}, "typo in Table 2")
     history = ledger.entry(entry_id)
@@ -95,12 +95,12 @@ def test_revision_keeps_history_and_rederives(ledger: Ledger, tmp_path: Path) ->
     assert after.reported["events"] == "12" and after.y != before.y
     assert history.revisions[1].reason == "typo in Table 2"
     # the original row still counts as imported: re-importing it adds nothing
-    assert ledger.import_sheet(sheet).added == ()
+    assert ledger.import_sheet(sheet, create_sources=True).added == ()
 
 
 def test_revision_is_validated_like_an_import(ledger: Ledger, tmp_path: Path) -> None:
     sheet = write_sheet(tmp_path / "s.csv", HEADER, ["a2020", "q", "rate", 10, 20.0, "", ""])
-    (entry_id,) = ledger.import_sheet(sheet).added
+    (entry_id,) = ledger.import_sheet(sheet, create_sources=True).added
     with pytest.raises(InputError) as raised:
         ledger.revise(entry_id, {"exposure": "0"}, "wrong")
     assert raised.value.field == "exposure"
@@ -141,13 +141,13 @@ def test_conflicting_source_is_refused(ledger: Ledger, tmp_path: Path) -> None:
         ["a2020", "q", "rate", 11, 20.0, "10.5555/two"],
     )
     with pytest.raises(InputError) as raised:
-        ledger.import_sheet(sheet)
+        ledger.import_sheet(sheet, create_sources=True)
     assert raised.value.field == "doi" and raised.value.row == 3
 
 
 def test_retraction_flags_and_keeps(ledger: Ledger, tmp_path: Path) -> None:
     sheet = write_sheet(tmp_path / "s.csv", HEADER, ["a2020", "q", "rate", 10, 20.0, "", ""])
-    ledger.import_sheet(sheet)
+    ledger.import_sheet(sheet, create_sources=True)
     ledger.retract("a2020", "retracted by the journal")
     assert ledger.entries() == []  # left out of every selection by default
     (entry,) = ledger.entries(include_retracted=True)  # kept, and flagged
@@ -166,5 +166,5 @@ def test_studies_link_reports(ledger: Ledger, tmp_path: Path) -> None:
         ["b2022", "TRIAL-1", "q", "rate", 11, 21.0],
         ["c2021", "", "q", "rate", 12, 22.0],
     )
-    ledger.import_sheet(sheet)
+    ledger.import_sheet(sheet, create_sources=True)
     assert [e.study for e in ledger.entries()] == ["TRIAL-1", "TRIAL-1", "c2021"]

@@ -328,7 +328,7 @@ def registry(cli, tmp_path: Path) -> Path:
     rows = [[f"bcg{i:02d}", "bcg", "risk_ratio", a, a + b, c, c + d]
             for i, (a, b, c, d) in enumerate(BCG_COUNTS)]  # fmt: skip
     sheet = write_sheet(tmp_path / "s.csv", SHEET, *rows)
-    assert cli("import", sheet, "--db", db).code == 0
+    assert cli("import", sheet, "--create-sources", "--db", db).code == 0
     assert cli("sources", "retract", "bcg03", "--reason", "journal notice", "--db", db).code == 0
     return db
 

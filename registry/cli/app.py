@@ -22,7 +22,15 @@ from typer._click.exceptions import ClickException, NoArgsIsHelpError
 from typer.core import TyperArgument, TyperCommand, TyperGroup
 
 from registry import __version__
-from registry.cli import check_cmds, demo_cmd, design_cmd, pool_cmd, prior_cmds, registry_cmds
+from registry.cli import (
+    check_cmds,
+    demo_cmd,
+    design_cmd,
+    elicit_cmd,
+    pool_cmd,
+    prior_cmds,
+    registry_cmds,
+)
 from registry.errors import LedgerError
 
 app = typer.Typer(
@@ -71,6 +79,7 @@ app.command("demo")(demo_cmd.demo)
 for command in (check_cmds.predict, check_cmds.update, check_cmds.sensitivity):
     app.command(command.__name__)(command)
 app.command("design")(design_cmd.design)
+app.command("elicit")(elicit_cmd.elicit)
 
 
 # EX_SOFTWARE of BSD's sysexits.h, "an internal software error": a bug in priorledger.

@@ -110,6 +110,18 @@ def ledger(db: str | None):  # type: ignore[no-untyped-def]
 
 
 # Options that select entries, shared by `entries` and `pool`.
+DecimalCommaOption = Annotated[
+    bool, typer.Option("--decimal-comma", help="Numbers are written with a decimal comma (0,15).")
+]
+CreateSourcesOption = Annotated[
+    bool, typer.Option("--create-sources", help="Create a bare source for an unknown source key.")
+]
+SetOption = Annotated[
+    list[str],
+    typer.Option(
+        "--set", metavar="FIELD=VALUE", help="An empty VALUE clears the field. Repeatable."
+    ),
+]
 QuantityOption = Annotated[
     str | None, typer.Option("--quantity", metavar="QUANTITY", help="Only this quantity.")
 ]

@@ -72,6 +72,9 @@ def show(stored: StoredPrior) -> None:
 
 def build(
     file: Annotated[Path, typer.Argument(metavar="FILE", help="Prior definition file (TOML).")],
+    strict: Annotated[
+        bool, typer.Option("--strict", help="A rule that matches no selected entry is an error.")
+    ] = False,
     db: DbOption = None,
     as_json: JsonOption = False,
 ) -> None:
@@ -83,7 +86,9 @@ def build(
     from registry.priors.store import build_prior
 
     with err.status("building the prior"):
-        stored = build_prior(ledger(db), load_definition(file))
+        stored = build_prior(ledger(db), load_definition(file), strict=strict)
+    for warning in stored.result.warnings:
+        err.print(f"warning: {warning}")
     if as_json:
         print_json(stored.to_dict())
         return
@@ -92,8 +97,6 @@ def build(
         if stored.new
         else f"inputs unchanged: {stored.prior.label} has the same digest; nothing stored"
     )
-    for warning in stored.result.warnings:
-        err.print(f"warning: {warning}")
     show(stored)
     err.print(CAUTION)
 

@@ -9,10 +9,13 @@ import typer
 from rich.text import Text
 
 from registry.cli.common import (
+    CreateSourcesOption,
     DbOption,
+    DecimalCommaOption,
     JsonOption,
     MeasureOption,
     QuantityOption,
+    SetOption,
     SourceOption,
     TagOption,
     err,
@@ -47,22 +50,47 @@ def import_sheet(
     dry_run: Annotated[
         bool, typer.Option("--dry-run", help="Check and report; write nothing.")
     ] = False,
+    decimal_comma: DecimalCommaOption = False,
+    reason: Annotated[
+        str | None,
+        typer.Option(
+            "--reason",
+            metavar="TEXT",
+            help='Reason for revisions of keyed rows (default "re-imported from FILE").',
+        ),
+    ] = None,
+    allow_revert: Annotated[
+        bool,
+        typer.Option(
+            "--allow-revert", help="Let a row equal to an older revision become the newest."
+        ),
+    ] = False,
+    create_sources: CreateSourcesOption = False,
     db: DbOption = None,
     as_json: JsonOption = False,
 ) -> None:
     """Import an extraction sheet: every row or, if any row is bad, none.
 
+    A row with a row_key that is already stored with other cells becomes a new revision.
+
     Example: priorledger import falls-sheet.csv --dry-run
     """
-    report = ledger(db).import_sheet(sheet, dry_run=dry_run)
+    report = ledger(db).import_sheet(
+        sheet,
+        dry_run=dry_run,
+        decimal_comma=decimal_comma,
+        reason=reason,
+        allow_revert=allow_revert,
+        create_sources=create_sources,
+    )
     if as_json:
         print_json(report.to_dict())
         return
-    err.print(
-        report.message
-        if report.entries
-        else f"{sheet}: all {report.rows} rows are already in the registry; nothing added"
-    )
+    err.print(report.message)
+    for plan in report.planned("revise") + report.planned("not_reverted"):
+        changed = ", ".join(f"{k} {v['from']} -> {v['to']}" for k, v in plan.changes.items())
+        verb = "revises" if plan.action == "revise" else "is not reverted:"
+        err.print(f"  row {plan.row} {verb} entry {plan.entry}: {changed}")
 
 
 @sources_app.callback(invoke_without_command=True)
@@ -95,6 +123,18 @@ def sources_import(
     file: Annotated[
         Path, typer.Argument(metavar="FILE", help="Bibliography, .bib (BibTeX) or .ris (RIS).")
     ],
+    update: Annotated[
+        bool,
+        typer.Option(
+            "--update", help="Take changed metadata from the file as new source revisions."
+        ),
+    ] = False,
+    reason: Annotated[
+        str | None,
+        typer.Option(
+            "--reason", metavar="TEXT", help='Why, with --update (default "updated from FILE").'
+        ),
+    ] = None,
     db: DbOption = None,
     as_json: JsonOption = False,
 ) -> None:
@@ -102,14 +142,59 @@ def sources_import(
 
     Example: priorledger sources import refs.bib
     """
-    report = ledger(db).import_sources(file)
+    report = ledger(db).import_sources(file, update=update, reason=reason)
     if as_json:
         print_json(report.to_dict())
         return
     err.print(
         f"{file}: {len(report.added)} sources added, {len(report.completed)} completed, "
-        f"{report.unchanged} unchanged"
+        f"{len(report.updated)} updated, {report.unchanged} unchanged"
     )
+
+
+@sources_app.command("edit")
+def sources_edit(
+    key: Annotated[str, typer.Argument(metavar="KEY", help="Citation key of the source.")],
+    set_: SetOption,
+    reason: Annotated[str, typer.Option("--reason", metavar="TEXT", help="Why it is changed.")],
+    db: DbOption = None,
+    as_json: JsonOption = False,
+) -> None:
+    """Correct a source's metadata as a new revision; earlier values are kept.
+
+    FIELD is title, authors, journal, doi, year or citation.
+
+    Example: priorledger sources edit smith2019 --set year=2020 --reason "online first 2019"
+    """
+    view = ledger(db).edit_source(key, _parse_set(set_), reason)
+    if as_json:
+        print_json(view.to_dict())
+        return
+    err.print(f"source {key} updated: {view.citation or ''}")
+
+
+@sources_app.command("show")
+def sources_show(
+    key: Annotated[str, typer.Argument(metavar="KEY", help="Citation key of the source.")],
+    db: DbOption = None,
+    as_json: JsonOption = False,
+) -> None:
+    """Show a source's metadata revisions, oldest first, with their reasons.
+
+    Example: priorledger sources show smith2019
+    """
+    history = ledger(db).source_history(key)
+    if as_json:
+        print_json({"key": key, "revisions": history})
+        return
+    if not history:
+        out.print(f"source {key} has not been edited since it was recorded")
+        return
+    table = make_table("rev", "when", "reason", "fields")
+    for r in history:
+        fields = "; ".join(f"{k}={v}" for k, v in r["fields"].items() if v is not None)
+        table.add_row(str(r["revision"]), r["created_at"][:19], r["reason"], fields)
+    out.print(table)
 
 
 @sources_app.command("retract")
@@ -232,14 +317,7 @@ def _parse_set(values: list[str]) -> dict[str, str]:
 
 def revise(
     entry_id: Annotated[int, typer.Argument(metavar="ID", help="Entry id.")],
-    set_: Annotated[
-        list[str],
-        typer.Option(
-            "--set",
-            metavar="FIELD=VALUE",
-            help="FIELD=VALUE; an empty VALUE clears the field. Repeatable.",
-        ),
-    ],
+    set_: SetOption,
     reason: Annotated[
         str, typer.Option("--reason", metavar="TEXT", help="Why the entry is corrected.")
     ],

@@ -1,8 +1,12 @@
-"""Reading bibliographies (BibTeX with bibtexparser, RIS with rispy) into source records.
+r"""Reading bibliographies (BibTeX with bibtexparser, RIS with rispy) into source records.
 
-A BibTeX entry's key is its citation key. An RIS record's key is its `ID` tag when present,
-else the first author's family name and the year (`smith2019`), with a letter added when
-that key repeats within the file.
+BibTeX fields are decoded from LaTeX to Unicode (`M{\"u}ller` -> `Müller`, `\&` -> `&`,
+braces dropped) by bibtexparser's latex-decoding middleware. A BibTeX entry's key is its
+citation key; a key given twice is an error naming both lines.
+
+An RIS record's key is its `ID` tag when present, else the first author's family name in
+lower case with anything but a-z dropped, then the year (`smith2019`; `anon` without an
+author), with `a`, `b`, ... added when that key repeats within the file.
 """
 
 from __future__ import annotations
@@ -61,8 +65,17 @@ def _clean(text: str | None) -> str | None:
 
 def _read_bibtex(path: Path, text: str) -> list[SourceRecord]:
     import bibtexparser
+    from bibtexparser.middlewares import LatexDecodingMiddleware
+    from bibtexparser.model import DuplicateBlockKeyBlock
 
-    library = bibtexparser.parse_string(text)
+    library = bibtexparser.parse_string(text, append_middleware=[LatexDecodingMiddleware()])
+    for block in library.failed_blocks:
+        if isinstance(block, DuplicateBlockKeyBlock):
+            raise InputError(
+                f"citation key {block.key!r} appears twice: on line "
+                f"{block.previous_block.start_line + 1} and on line {block.start_line + 1}",
+                path=str(path),
+            )
     if library.failed_blocks:
         block = library.failed_blocks[0]
         raise InputError(

@@ -20,7 +20,7 @@ from __future__ import annotations
 import itertools
 import math
 from collections.abc import Callable, Mapping
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from statistics import NormalDist
 
 from registry.errors import ConversionError
@@ -601,19 +601,45 @@ def _incomplete(measure: str, present: frozenset[str]) -> ConversionError:
     return ConversionError(f"incomplete reported form: {needs}", field=missing[0][0])
 
 
-def derive(measure: str, reported: Mapping[str, float]) -> Derived:
+def derive(
+    measure: str, reported: Mapping[str, float], bounds: frozenset[str] = frozenset()
+) -> Derived:
     """The estimate and standard error on ``measure``'s analysis scale, from one sheet row.
 
     ``reported`` holds the numeric columns the row filled (already parsed to numbers; a
-    missing ``level`` means 0.95). Exactly one complete reported form must be filled and be
-    valid for ``measure``; each form's formula is in the docstring of its ``_from_*``
-    function. Raises ``ConversionError`` whose ``field`` names the column at fault (or
-    ``"measure"``), with what it must be and what it got.
+    missing ``level`` means 0.95); ``bounds`` names the columns reported as an upper bound
+    (``<0.001``), which only ``p`` may be. Exactly one complete reported form must be
+    filled and be valid for ``measure``; each form's formula is in the docstring of its
+    ``_from_*`` function. Raises ``ConversionError`` whose ``field`` names the column at
+    fault (or ``"measure"``), with what it must be and what it got.
     """
     if measure not in _TABLE:
         raise ConversionError(
             f"measure must be one of {', '.join(_TABLE)}, got {measure!r}", field="measure"
         )
+    unbounded = [name for name in NUMERIC_FIELDS if name in bounds and name != "p"]
+    if unbounded:
+        raise ConversionError(
+            "only a p-value may be reported as an inequality (<0.001)", field=unbounded[0]
+        )
     values = _checked_columns(reported)
-    form = _select_form(measure, frozenset(values))
-    return form.compute(measure, values)
+    derived = _select_form(measure, frozenset(values)).compute(measure, values)
+    return _p_bound(derived, values["p"]) if "p" in bounds else derived
+
+
+def _p_bound(derived: Derived, bound: float) -> Derived:
+    """A p-value reported as ``p < bound``, converted with the bound as the p-value.
+
+    The true p is smaller, so the true |z| is larger and the true se = |y| / z smaller: the
+    se from the bound is an upper bound, a conservative (wider) estimate. Flagged in the
+    conversion name (``p_bound``) and explained in the corrections.
+    """
+    return replace(
+        derived,
+        conversion=derived.conversion.replace("p_value", "p_bound", 1),
+        corrections=(
+            f"p reported as <{_num(bound)}: the bound used as the p-value, so the se is an "
+            "upper bound (conservative: larger than the true se)",
+            *derived.corrections,
+        ),
+    )

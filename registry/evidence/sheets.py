@@ -3,6 +3,15 @@
 This module only reads and validates; it knows nothing of the database. Rows are numbered
 as a spreadsheet shows them (the header is row 1), so an error's row is the one the curator
 sees. A bad cell raises `InputError` naming the file, row and column.
+
+Numbers are read as papers print them: a p-value as an upper bound (`<0.001`), a proportion
+or a level as a percentage (`15%`, `95%`), and with `decimal_comma` a comma as the decimal
+point (`0,15`; never guessed: without it a comma in a number is an error). A CSV file whose
+header is separated by semicolons and has no comma is read with `;` as the delimiter.
+
+A row's identity (`SheetRow.fingerprint`) hashes its parsed numbers, each written in one
+canonical form (`0.90`, `0.9` and `90%` of a proportion are one value), with its source,
+study, quantity and measure: a CSV sheet and its XLSX copy give the same identities.
 """
 
 from __future__ import annotations
@@ -35,13 +44,18 @@ CONTEXT_FIELDS = (
     "risk_of_bias",
     "notes",
 )
-TEXT_FIELDS = ("study", "tags", *SOURCE_FIELDS, *CONTEXT_FIELDS)
+TEXT_FIELDS = ("study", "tags", "row_key", *SOURCE_FIELDS, *CONTEXT_FIELDS)
 COLUMNS = frozenset((*REQUIRED, *NUMERIC_FIELDS, *TEXT_FIELDS))
 VOCABULARY = {
     "design": ("rct", "cohort", "case_control", "cross_sectional", "registry", "expert", "other"),
     "risk_of_bias": ("low", "some", "high"),
 }
 KEY_PATTERN = re.compile(r"[A-Za-z0-9][A-Za-z0-9_.:/+-]*")
+# Columns that may be given as a percentage, by measure ("level" for every measure).
+PERCENT_FIELDS: dict[str, tuple[str, ...]] = {
+    "proportion": ("estimate", "lower", "upper", "se"),
+    "risk_difference": ("estimate", "lower", "upper", "se"),
+}
 
 
 @dataclass(frozen=True)
@@ -60,49 +74,87 @@ class SheetRow:
     tags: tuple[str, ...] = ()
     extra: dict[str, str] = field(default_factory=dict)
     fingerprint: str = ""
+    row_key: str | None = None
+    numbers: dict[str, str] = field(default_factory=dict)
+
+    @property
+    def cells(self) -> dict[str, str]:
+        """The row's entry cells as entered (the form `EntryView.cells` has)."""
+        return {**self.content, **self.reported}
+
+    @property
+    def content(self) -> dict[str, str]:
+        """Every cell that makes up an entry, numbers in canonical form: what a revision
+        changes (so `0.90` -> `0.9` is no change)."""
+        return {
+            "source": self.source,
+            "study": self.study,
+            "quantity": self.quantity,
+            "measure": self.measure,
+            **self.numbers,
+            **self.context,
+            **({"tags": ";".join(self.tags)} if self.tags else {}),
+            **self.extra,
+        }
 
 
-def _cell_text(value: object) -> str:
+def _cell_text(value: object, decimal_comma: bool) -> str:
     if value is None:
         return ""
     if isinstance(value, float) and value.is_integer():
         return str(int(value))
+    if isinstance(value, float) and decimal_comma:
+        return repr(value).replace(".", ",")  # a number cell, written as the sheet's text is
     return str(value).strip()
 
 
-def _read_xlsx(path: Path) -> Iterator[list[str]]:
+def _read_xlsx(path: Path, decimal_comma: bool) -> Iterator[list[str]]:
     from openpyxl import load_workbook
 
     workbook = load_workbook(path, read_only=True, data_only=True)
     try:
         for values in workbook.worksheets[0].iter_rows(values_only=True):
-            yield [_cell_text(v) for v in values]
+            yield [_cell_text(v, decimal_comma) for v in values]
     finally:
         workbook.close()
 
 
-def read_cells(path: Path) -> list[dict[str, str]]:
+def _read_csv(path: Path) -> list[list[str]]:
+    with path.open(newline="", encoding="utf-8-sig") as handle:
+        first = handle.readline()
+        handle.seek(0)
+        # Column names hold neither character, so the header shows the delimiter.
+        delimiter = ";" if ";" in first and "," not in first else ","
+        return [[c.strip() for c in line] for line in csv.reader(handle, delimiter=delimiter)]
+
+
+def read_cells(
+    path: Path,
+    *,
+    columns: frozenset[str] = COLUMNS,
+    required: tuple[str, ...] = REQUIRED,
+    decimal_comma: bool = False,
+) -> list[dict[str, str]]:
     """The sheet's data rows as column -> text, empty cells left out."""
     suffix = path.suffix.lower()
     if suffix == ".csv":
-        with path.open(newline="", encoding="utf-8-sig") as handle:
-            grid = [[c.strip() for c in line] for line in csv.reader(handle)]
+        grid = _read_csv(path)
     elif suffix in (".xlsx", ".xlsm"):
-        grid = list(_read_xlsx(path))
+        grid = list(_read_xlsx(path, decimal_comma))
     else:
-        raise InputError("an extraction sheet must be .csv or .xlsx", path=str(path))
+        raise InputError("a sheet must be .csv or .xlsx", path=str(path))
     if not grid:
         raise InputError("the sheet is empty", path=str(path))
     header = [h.strip().lower() for h in grid[0]]
     for name in header:
-        if name and name not in COLUMNS and not name.startswith("x_"):
+        if name and name not in columns and not name.startswith("x_"):
             raise InputError(
                 "unknown column; prefix it with x_ to keep it as an extra",
                 field=name,
                 row=1,
                 path=str(path),
             )
-    missing = [name for name in REQUIRED if name not in header]
+    missing = [name for name in required if name not in header]
     if missing:
         raise InputError("required column is missing", field=missing[0], row=1, path=str(path))
     duplicated = {h for h in header if h and header.count(h) > 1}
@@ -114,12 +166,68 @@ def read_cells(path: Path) -> list[dict[str, str]]:
     return rows
 
 
-def fingerprint(cells: dict[str, str]) -> str:
-    """A hash of a row's cells, independent of column order and of the file it came in."""
-    return hashlib.sha256(json.dumps(cells, sort_keys=True).encode()).hexdigest()
+def parse_number(
+    text: str, name: str, measure: str, *, decimal_comma: bool = False
+) -> tuple[float, bool]:
+    """A numeric cell as a number, and whether it is an upper bound (`<0.001`, p only).
+
+    A p-value may keep the printed `p`: `p<0.001`, `P = 0.03`.
+
+    `15%` is 0.15 where `PERCENT_FIELDS` allows it; with `decimal_comma`, `0,15` is 0.15 and a
+    point is refused (it could be a thousands separator).
+    """
+    body = text.strip().replace(" ", "")
+    if name == "p":  # as printed: "p<0.001", "P = 0.03"
+        body = re.sub(r"^[pP]=?", "", body)
+    bound = body.startswith(("<", "≤"))
+    if bound:
+        if name != "p":
+            raise InputError(
+                f"only a p-value may be given as an inequality, got {text!r}", field=name
+            )
+        body = body.lstrip("<=≤")
+    elif body.startswith(">"):
+        raise InputError(
+            f"{text!r} bounds the standard error from below only; report the interval or se",
+            field=name,
+        )
+    if decimal_comma:
+        if "." in body:
+            raise InputError(f"with --decimal-comma a number has no '.', got {text!r}", field=name)
+        body = body.replace(",", ".")
+    elif "," in body:
+        raise InputError(
+            f"must be a number, got {text!r}; for decimal commas import with --decimal-comma",
+            field=name,
+        )
+    percent = body.endswith("%")
+    if percent and name != "level" and name not in PERCENT_FIELDS.get(measure, ()):
+        raise InputError(
+            f"a percentage is accepted for level and for a proportion, got {text!r}", field=name
+        )
+    try:
+        value = float(body.removesuffix("%"))
+    except ValueError:
+        raise InputError(f"must be a number, got {text!r}", field=name) from None
+    return (value / 100.0 if percent else value), bound
 
 
-def parse_row(cells: dict[str, str]) -> SheetRow:
+def canonical(value: float, bound: bool) -> str:
+    """One text per number (`0.90`, `0.9`, `90%` -> `0.9`), `<` kept for a bound."""
+    return ("<" if bound else "") + repr(value)
+
+
+def identity(source: str, study: str, quantity: str, measure: str, numbers: dict[str, str]) -> str:
+    """A row's identity: its canonical numbers with its source, study, quantity and measure.
+
+    Independent of column order, of the file it came in and of how a spreadsheet wrote the
+    numbers. Migration 0004 gives stored revisions their identity by this rule.
+    """
+    doc = {"source": source, "study": study, "quantity": quantity, "measure": measure}
+    return hashlib.sha256(json.dumps({**doc, **numbers}, sort_keys=True).encode()).hexdigest()
+
+
+def parse_row(cells: dict[str, str], *, decimal_comma: bool = False) -> SheetRow:
     """Validate one row's cells and derive its estimate; errors name the column (no row)."""
     for name in REQUIRED:
         if not cells.get(name):
@@ -143,44 +251,66 @@ def parse_row(cells: dict[str, str]) -> SheetRow:
             )
     if "year" in cells and not re.fullmatch(r"\d{4}", cells["year"]):
         raise InputError(f"must be a four-digit year, got {cells['year']!r}", field="year")
+    if "row_key" in cells and not KEY_PATTERN.fullmatch(cells["row_key"]):
+        raise InputError(f"{cells['row_key']!r} is not a key", field="row_key")
     numbers: dict[str, float] = {}
+    bounds = set()
     for name in NUMERIC_FIELDS:
         if name in cells:
-            try:
-                numbers[name] = float(cells[name])
-            except ValueError:
-                raise InputError(f"must be a number, got {cells[name]!r}", field=name) from None
-    derived = derive(measure, numbers)
+            numbers[name], bound = parse_number(
+                cells[name], name, measure, decimal_comma=decimal_comma
+            )
+            if bound:
+                bounds.add(name)
+    derived = derive(measure, numbers, frozenset(bounds))
     tags = tuple(sorted({t.strip() for t in cells.get("tags", "").split(";") if t.strip()}))
+    normal = {k: canonical(v, k in bounds) for k, v in numbers.items()}
+    study = cells.get("study", cells["source"])
     return SheetRow(
         row=0,
         source=cells["source"],
-        study=cells.get("study", cells["source"]),
+        study=study,
         quantity=cells["quantity"],
         measure=measure,
-        reported={k: cells[k] for k in NUMERIC_FIELDS if k in cells},
+        # as entered; a decimal comma is the sheet's notation, not the paper's
+        reported={k: cells[k].replace(",", ".") if decimal_comma else cells[k] for k in numbers},
         derived=derived,
         context={k: cells[k] for k in CONTEXT_FIELDS if k in cells},
         source_info={k: cells[k] for k in SOURCE_FIELDS if k in cells},
         tags=tags,
         extra={k: v for k, v in cells.items() if k.startswith("x_")},
-        fingerprint=fingerprint(cells),
+        fingerprint=identity(cells["source"], study, cells["quantity"], measure, normal),
+        row_key=cells.get("row_key"),
+        numbers=normal,
     )
 
 
-def read_sheet(path: str | Path) -> list[SheetRow]:
-    """Every row of a sheet, validated; the first bad cell raises with file, row and column."""
+def read_sheet(path: str | Path, *, decimal_comma: bool = False) -> list[SheetRow]:
+    """Every row of a sheet, validated; the first bad cell raises with file, row and column.
+
+    A `row_key` given on two rows is an error naming the second.
+    """
     path = Path(path)
     if not path.is_file():
         raise InputError("no such file", path=str(path))
-    rows = []
-    for number, cells in enumerate(read_cells(path), start=2):
+    rows: list[SheetRow] = []
+    keys: dict[str, int] = {}
+    for number, cells in enumerate(read_cells(path, decimal_comma=decimal_comma), start=2):
         if not cells:
             continue
         try:
-            parsed = parse_row(cells)
+            parsed = parse_row(cells, decimal_comma=decimal_comma)
         except InputError as error:
             raise error.located(path=str(path), row=number) from None
+        if parsed.row_key is not None and parsed.row_key in keys:
+            raise InputError(
+                f"row_key {parsed.row_key!r} is also on row {keys[parsed.row_key]}",
+                field="row_key",
+                row=number,
+                path=str(path),
+            )
+        if parsed.row_key is not None:
+            keys[parsed.row_key] = number
         rows.append(replace(parsed, row=number))
     if not rows:
         raise InputError("the sheet has no data rows", path=str(path))

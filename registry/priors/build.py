@@ -518,24 +518,41 @@ def _at_power(
     return _Run(pooled, discounts, fitted, components, model, ess, robust)
 
 
+def unmatched_rules(definition: Definition, entries: Sequence[EntryLike]) -> list[str]:
+    """Names of the rules whose `where` matches none of the entries (a typo applies nothing)."""
+    return [
+        r["name"] for r in definition["rule"] if not any(_matches(r["where"], e) for e in entries)
+    ]
+
+
 def construct(
-    definition: Definition, entries: Sequence[EntryLike], *, rebuild: bool = False
+    definition: Definition,
+    entries: Sequence[EntryLike],
+    *,
+    rebuild: bool = False,
+    strict: bool = False,
 ) -> Construction:
     """Build the prior's components and lineage from entries (in order) and a definition.
 
     `rebuild` is for verifying a stored version from exactly the revisions it used: entries
     whose source has since been retracted are then kept (the version is reported stale).
+    A rule that matches no entry is a warning, or with `strict` an error.
     """
     from registry.priors.ess import information_shares, power_for_ess_cap
 
     row = check_selection(entries)
+    idle = [
+        f"rule {name!r} matches no selected entry" for name in unmatched_rules(definition, entries)
+    ]
+    if idle and strict:
+        raise InputError(f"{idle[0]} (--strict)", field="rule", path=definition.path)
     ratings = [rate_entry(e, definition) for e in entries]
     digest = _digest(definition, entries, ratings)
     global_power = definition["discount.global_power"]
     retracted_ok = rebuild or definition["select.include_retracted"]
     run = _at_power(definition, entries, ratings, global_power, row, retracted_ok)
     cap = definition["discount.ess_cap"]
-    notes = []
+    notes = list(idle)
     headline = run.ess[ESS_METHOD]
     if cap is not None and headline is None:
         raise InputError(
@@ -588,7 +605,7 @@ def construct(
         global_power=global_power,
         target=definition["target"],
         notes=tuple(notes),
-        warnings=run.fitted.warnings,
+        warnings=(*idle, *run.fitted.warnings),
         plausible=_plausible(definition, run.fitted.scale, run.components, row.scale),
         robust=run.robust,
         include_retracted=definition["select.include_retracted"],

@@ -78,11 +78,12 @@ def select_entries(ledger: Ledger, definition: Definition) -> list[EntryView]:
     return chosen
 
 
-def build_prior(ledger: Ledger, definition: Definition) -> StoredPrior:
+def build_prior(ledger: Ledger, definition: Definition, *, strict: bool = False) -> StoredPrior:
     """Build `definition` on the registry's current entries and store it as a new version,
-    unless the latest version has the same digest (then that version is returned)."""
+    unless the latest version has the same digest (then that version is returned).
+    `strict` makes a rule that matches no selected entry an error."""
     entries = select_entries(ledger, definition)
-    built = construct(definition, entries)
+    built = construct(definition, entries, strict=strict)
     uses = [
         Use(
             r.entry.id,

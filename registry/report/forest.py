@@ -24,6 +24,17 @@ FORMATS = ("png", "pdf", "svg")
 _NO_EFFECT = {"identity": 0.0, "log": 0.0, "fisher_z": 0.0}
 
 
+def figure_format(path: Path) -> str:
+    """The figure format a file name asks for (its suffix), or an error naming the choices."""
+    fmt = path.suffix.lower().lstrip(".")
+    if fmt not in FORMATS:
+        raise InputError(
+            f"the figure's file name must end in .{', .'.join(FORMATS)}; got {path.name!r}",
+            field="path",
+        )
+    return fmt
+
+
 def forest_plot(
     path: str | Path,
     labels: Sequence[str],
@@ -52,12 +63,7 @@ def forest_plot(
     from matplotlib.patches import Polygon
 
     path = Path(path)
-    fmt = path.suffix.lower().lstrip(".")
-    if fmt not in FORMATS:
-        raise InputError(
-            f"the figure's file name must end in .{', .'.join(FORMATS)}; got {path.name!r}",
-            field="path",
-        )
+    fmt = figure_format(path)
     if scale not in scales.SCALES:
         raise InputError(
             f"scale must be one of {', '.join(scales.SCALES)}; got {scale!r}", field="scale"

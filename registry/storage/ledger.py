@@ -14,10 +14,11 @@ from pathlib import Path
 from typing import Any
 
 from sqlalchemy import Engine, func, select
-from sqlalchemy.orm import Session, sessionmaker
+from sqlalchemy.orm import Session, selectinload, sessionmaker
 
 from registry.errors import InputError, NotFoundError
 from registry.evidence.bibliography import read_bibliography
+from registry.evidence.elicit import Elicitation, read_elicitation
 from registry.evidence.sheets import COLUMNS, REQUIRED, SheetRow, parse_row, read_sheet
 from registry.storage import db
 from registry.storage.models import (
@@ -26,6 +27,7 @@ from registry.storage.models import (
     EntryTag,
     ImportRecord,
     Source,
+    SourceRevision,
     Study,
 )
 
@@ -138,13 +140,38 @@ class EntryHistory:
     current: EntryView
     revisions: tuple[EntryView, ...]
     imported_from: str | None = None
+    row_key: str | None = None
 
     def to_dict(self) -> dict[str, Any]:
         return {
             **self.current.to_dict(),
             "imported_from": self.imported_from,
+            "row_key": self.row_key,
             "revisions": [r.to_dict() for r in self.revisions],
         }
+
+
+@dataclass(frozen=True)
+class RowPlan:
+    """What an import does with one sheet row, and why."""
+
+    row: int
+    action: str  # add | revise | present | not_reverted
+    entry: int | None = None
+    revision: int | None = None  # the revision it adds, is present as, or would revert to
+    changes: dict[str, dict[str, str | None]] = field(default_factory=dict)
+    note: str = ""
+
+    def to_dict(self) -> dict[str, Any]:
+        doc: dict[str, Any] = {"row": self.row, "entry": self.entry, "revision": self.revision}
+        if self.action in ("revise", "not_reverted"):
+            doc["changes"] = self.changes
+        if self.note:
+            doc["note"] = self.note
+        return doc
+
+
+_ACTIONS = ("add", "revise", "present", "not_reverted")
 
 
 @dataclass(frozen=True)
@@ -156,13 +183,26 @@ class ImportReport:
     new_sources: tuple[str, ...] = ()
     dry_run: bool = False
     entries: tuple[SheetRow, ...] = field(default=(), repr=False)
+    plan: tuple[RowPlan, ...] = ()
+
+    def planned(self, action: str) -> list[RowPlan]:
+        return [p for p in self.plan if p.action == action]
 
     @property
     def message(self) -> str:
-        what = "would add" if self.dry_run else "added"
-        text = f"{self.path}: {self.rows} rows read, {what} {len(self.entries)} entries"
-        if self.skipped:
-            text += f", {self.skipped} already in the registry"
+        counts = {a: len(self.planned(a)) for a in _ACTIONS}
+        add, revise = ("would add", "would revise") if self.dry_run else ("added", "revised")
+        text = f"{self.path}: {self.rows} rows read, "
+        if counts["add"] or counts["revise"]:
+            text += f"{add} {counts['add']} entries, {revise} {counts['revise']}"
+        else:
+            text += "nothing added"
+        text += f", {counts['present']} already in the registry"
+        if counts["not_reverted"]:
+            text += (
+                f", {counts['not_reverted']} rows match an older revision and are left at the "
+                "newer one (--allow-revert to bring them back)"
+            )
         if self.new_sources:
             text += f", {len(self.new_sources)} new sources"
         return text
@@ -175,6 +215,7 @@ class ImportReport:
             "skipped": self.skipped,
             "new_sources": list(self.new_sources),
             "dry_run": self.dry_run,
+            **{f"rows_{a}": [p.to_dict() for p in self.planned(a)] for a in _ACTIONS},
         }
 
 
@@ -184,6 +225,7 @@ class SourceImportReport:
     added: tuple[str, ...]
     completed: tuple[str, ...]
     unchanged: int
+    updated: tuple[str, ...] = ()
 
     def to_dict(self) -> dict[str, Any]:
         return {
@@ -191,6 +233,7 @@ class SourceImportReport:
             "added": list(self.added),
             "completed": list(self.completed),
             "unchanged": self.unchanged,
+            "updated": list(self.updated),
         }
 
 
@@ -209,6 +252,73 @@ def _head_revisions():  # type: ignore[no-untyped-def]
         latest,
         (EntryRevision.entry_id == latest.c.entry_id) & (EntryRevision.revision == latest.c.rev),
     )
+
+
+SOURCE_METADATA = ("citation", "title", "authors", "journal", "doi", "year")
+
+
+def _source_value(name: str, value: str, where: str) -> object:
+    text = value.strip()
+    if not text:
+        return None
+    if name != "year":
+        return text
+    if not text.isdigit() or len(text) != 4:
+        raise InputError(f"must be a four-digit year, got {value!r}", field=name, path=where)
+    return int(text)
+
+
+def _revise_source(
+    session: Session, source: Source, changes: Mapping[str, object], reason: str
+) -> None:
+    """Apply `changes` to a source, keeping its metadata before and after as revisions."""
+    last = session.scalar(
+        select(func.max(SourceRevision.revision)).where(SourceRevision.source_id == source.id)
+    )
+    if last is None:  # first edit: keep what was recorded until now
+        session.add(
+            SourceRevision(
+                source_id=source.id,
+                revision=1,
+                fields=_metadata(source),
+                reason="as first recorded",
+                created_at=source.created_at,
+            )
+        )
+        last = 1
+    for name, value in changes.items():
+        setattr(source, name, value)
+    session.add(
+        SourceRevision(
+            source_id=source.id, revision=last + 1, fields=_metadata(source), reason=reason
+        )
+    )
+    session.flush()
+
+
+def _metadata(source: Source) -> dict[str, object]:
+    return {name: getattr(source, name) for name in SOURCE_METADATA}
+
+
+def _keyed_plan(row: SheetRow, entry: Entry, allow_revert: bool) -> RowPlan:
+    """A keyed row against its entry: present, a new revision, or a revert (kept back)."""
+    views = [EntryView.of(r) for r in entry.revisions]
+    head = views[-1]
+    contents = [parse_row(v.cells).content for v in views]
+    changes = {
+        name: {"from": head.cells.get(name), "to": row.cells.get(name)}
+        for name in sorted(set(contents[-1]) | set(row.content))
+        if contents[-1].get(name) != row.content.get(name)
+    }
+    if not changes:
+        return RowPlan(row.row, "present", entry.id, head.revision)
+    older = [v.revision for v, c in zip(views, contents, strict=True) if c == row.content]
+    if older and not allow_revert:
+        return RowPlan(
+            row.row, "not_reverted", entry.id, older[-1], changes,
+            f"the row is revision {older[-1]}; the entry is at revision {head.revision}",
+        )  # fmt: skip
+    return RowPlan(row.row, "revise", entry.id, head.revision + 1, changes)
 
 
 class Ledger:
@@ -238,21 +348,37 @@ class Ledger:
 
     # sources -------------------------------------------------------------------------------
 
-    def import_sources(self, path: str | Path) -> SourceImportReport:
+    def import_sources(
+        self, path: str | Path, *, update: bool = False, reason: str | None = None
+    ) -> SourceImportReport:
         """Add a bibliography's references; fill in fields a stub source lacks.
 
         A reference whose key exists with a different value for a field already set is an
-        error: a source is corrected deliberately, not by re-importing.
+        error unless `update`: then the source's metadata takes the file's values as a new
+        source revision (`reason`, else "updated from FILE"), the old values kept.
         """
         path = Path(path)
         records = read_bibliography(path)
-        added, completed, unchanged = [], [], 0
+        added, completed, updated, unchanged = [], [], [], 0
+        why = (reason or "").strip() or f"updated from {path.name}"
         with self.transaction() as session:
             for record in records:
                 source = session.scalar(select(Source).where(Source.key == record.key))
                 if source is None:
                     session.add(Source(key=record.key, **record.fields()))
                     added.append(record.key)
+                    continue
+                if update:
+                    differ = {
+                        k: v
+                        for k, v in record.fields().items()
+                        if str(getattr(source, k)) != str(v)
+                    }
+                    if differ:
+                        _revise_source(session, source, differ, why)
+                        updated.append(record.key)
+                    else:
+                        unchanged += 1
                     continue
                 changes = self._merge_source(source, record.fields(), str(path), record.key)
                 if changes:
@@ -268,7 +394,9 @@ class Ledger:
                     skipped=unchanged,
                 )
             )
-        return SourceImportReport(str(path), tuple(added), tuple(completed), unchanged)
+        return SourceImportReport(
+            str(path), tuple(added), tuple(completed), unchanged, tuple(updated)
+        )
 
     @staticmethod
     def _merge_source(
@@ -282,12 +410,62 @@ class Ledger:
                 changed = True
             elif str(current) != str(value) and name != "citation":
                 raise InputError(
-                    f"source {key!r} already has {name} {current!r}, not {value!r}",
+                    f"source {key!r} already has {name} {current!r}, not {value!r}; "
+                    "`sources edit` or `sources import --update` records a revision",
                     field=name,
                     row=row,
                     path=where,
                 )
         return changed
+
+    def edit_source(self, key: str, changes: Mapping[str, str], reason: str) -> SourceView:
+        """Change a source's metadata as a new source revision; an empty value clears a field.
+
+        The values before the first edit are kept as revision 1, so nothing is lost.
+        """
+        where = f"source {key}"
+        if not reason.strip():
+            raise InputError("an edit needs a reason", field="--reason", path=where)
+        if not changes:
+            raise InputError("give at least one --set FIELD=VALUE", field="--set", path=where)
+        values: dict[str, object] = {}
+        for name, value in changes.items():
+            if name not in SOURCE_METADATA:
+                raise InputError(
+                    f"not a field of a source; one of {', '.join(SOURCE_METADATA)}",
+                    field=name,
+                    path=where,
+                )
+            values[name] = _source_value(name, value, where)
+        with self.transaction() as session:
+            source = session.scalar(select(Source).where(Source.key == key))
+            if source is None:
+                raise NotFoundError(f"no source with key {key!r}")
+            differ = {k: v for k, v in values.items() if getattr(source, k) != v}
+            if not differ:
+                raise InputError("the changes leave the source as it is", field="--set", path=where)
+            _revise_source(session, source, differ, reason.strip())
+            return SourceView.of(source)
+
+    def source_history(self, key: str) -> list[dict[str, Any]]:
+        """Every recorded version of a source's metadata, oldest first (empty if never edited)."""
+        with self._sessions() as session:
+            source = session.scalar(select(Source).where(Source.key == key))
+            if source is None:
+                raise NotFoundError(f"no source with key {key!r}")
+            return [
+                {
+                    "revision": r.revision,
+                    "fields": dict(r.fields),
+                    "reason": r.reason,
+                    "created_at": r.created_at.isoformat(),
+                }
+                for r in session.scalars(
+                    select(SourceRevision)
+                    .where(SourceRevision.source_id == source.id)
+                    .order_by(SourceRevision.revision)
+                )
+            ]
 
     def sources(self) -> list[SourceView]:
         with self._sessions() as session:
@@ -320,64 +498,203 @@ class Ledger:
 
     # entries -------------------------------------------------------------------------------
 
-    def import_sheet(self, path: str | Path, *, dry_run: bool = False) -> ImportReport:
-        """Import every row of an extraction sheet, or none: one bad row writes nothing.
+    def import_sheet(
+        self,
+        path: str | Path,
+        *,
+        dry_run: bool = False,
+        decimal_comma: bool = False,
+        reason: str | None = None,
+        allow_revert: bool = False,
+        create_sources: bool = False,
+    ) -> ImportReport:
+        """Import an extraction sheet, every row or none: one bad row writes nothing.
 
-        A row already in the registry (same cells, from any sheet) is skipped and counted.
+        A row is matched to an entry by its `row_key` when it has one, else by its identity
+        (`sheets.identity`: canonical numbers, source, study, quantity, measure) against every
+        stored revision. A keyed row whose cells differ from its entry's current revision
+        adds a revision (`reason`, else "re-imported from FILE"); one that equals an older
+        revision is left alone (`not_reverted`) unless `allow_revert`. A source key not in
+        the registry is an error unless `create_sources`.
         """
         path = Path(path)
-        rows = read_sheet(path)
+        rows = read_sheet(path, decimal_comma=decimal_comma)
+        return self._import_rows(
+            path,
+            rows,
+            kind="sheet",
+            dry_run=dry_run,
+            reason=reason,
+            allow_revert=allow_revert,
+            create_sources=create_sources,
+        )
+
+    def import_elicitation(
+        self,
+        path: str | Path,
+        *,
+        family: str = "normal",
+        pool: str | None = None,
+        dry_run: bool = False,
+        decimal_comma: bool = False,
+        create_sources: bool = False,
+    ) -> tuple[ImportReport, Elicitation]:
+        """Fit a judgement sheet (`evidence.elicit`) and store one entry per expert and
+        quantity, design `expert`, plus one per pool; fits already stored are not added again.
+        """
+        path = Path(path)
+        elicitation = read_elicitation(path, family=family, pool=pool, decimal_comma=decimal_comma)
+        report = self._import_rows(
+            path,
+            elicitation.rows(),
+            kind="elicitation",
+            dry_run=dry_run,
+            create_sources=create_sources,
+        )
+        return report, elicitation
+
+    def _import_rows(
+        self,
+        path: Path,
+        rows: Sequence[SheetRow],
+        *,
+        kind: str,
+        dry_run: bool,
+        reason: str | None = None,
+        allow_revert: bool = False,
+        create_sources: bool = False,
+    ) -> ImportReport:
+        why = (reason or "").strip()
         with self.transaction(commit=not dry_run) as session:
-            known = set(
-                session.scalars(
-                    select(Entry.fingerprint).where(
-                        Entry.fingerprint.in_([r.fingerprint for r in rows])
-                    )
-                )
-            )
-            fresh, seen = [], set()
-            for row in rows:
-                if row.fingerprint in known or row.fingerprint in seen:
-                    continue
-                seen.add(row.fingerprint)
-                fresh.append(row)
+            plans = self._plan(session, rows, allow_revert)
             new_sources: list[str] = []
             added = []
-            if fresh:  # a sheet with nothing new leaves no trace at all
+            fresh = [r for r, p in zip(rows, plans, strict=True) if p.action == "add"]
+            record = None
+            if fresh:  # a sheet with nothing new leaves no import record
                 record = ImportRecord(
-                    kind="sheet",
+                    kind=kind,
                     path=str(path),
                     sha256=_sha256(path),
                     added=len(fresh),
                     skipped=len(rows) - len(fresh),
                 )
                 session.add(record)
-            for row in fresh:
-                source = self._source_for(session, row, str(path), new_sources)
-                entry = Entry(fingerprint=row.fingerprint, origin=record, row=row.row)
-                session.add(entry)
-                session.flush()
-                self._add_revision(
-                    session, entry.id, 1, row, source, f"imported from {path.name} row {row.row}"
-                )
-                added.append(entry.id)
+            for row, plan in zip(rows, plans, strict=True):
+                if plan.action not in ("add", "revise"):
+                    continue
+                source = self._source_for(session, row, str(path), new_sources, create_sources)
+                if plan.action == "add":
+                    entry = Entry(
+                        fingerprint=row.fingerprint, row_key=row.row_key, origin=record, row=row.row
+                    )
+                    session.add(entry)
+                    session.flush()
+                    self._add_revision(
+                        session,
+                        entry.id,
+                        1,
+                        row,
+                        source,
+                        f"imported from {path.name} row {row.row}",
+                    )
+                    added.append(entry.id)
+                else:
+                    assert plan.entry is not None and plan.revision is not None
+                    self._add_revision(
+                        session,
+                        plan.entry,
+                        plan.revision,
+                        row,
+                        source,
+                        why or f"re-imported from {path.name} row {row.row}",
+                    )
+        present = sum(p.action == "present" for p in plans)
         return ImportReport(
             str(path),
             len(rows),
             () if dry_run else tuple(added),
-            len(rows) - len(fresh),
+            present,
             tuple(new_sources),
             dry_run,
             tuple(fresh),
+            tuple(plans),
         )
 
     @staticmethod
-    def _source_for(session: Session, row: SheetRow, where: str, new: list[str]) -> Source:
+    def _plan(session: Session, rows: Sequence[SheetRow], allow_revert: bool) -> list[RowPlan]:
+        """Decide, row by row, whether a sheet row adds, revises or is already present.
+
+        Entries and revisions are read in a few queries for the whole sheet, not per row.
+        """
+        keyed = {
+            e.row_key: e
+            for e in session.scalars(
+                select(Entry)
+                .where(Entry.row_key.in_([r.row_key for r in rows if r.row_key]))
+                .options(
+                    selectinload(Entry.revisions).options(
+                        selectinload(EntryRevision.source),
+                        selectinload(EntryRevision.study),
+                        selectinload(EntryRevision.tags),
+                    )
+                )
+            )
+        }
+        known = {
+            identity: (entry_id, revision)
+            for identity, entry_id, revision in session.execute(
+                select(EntryRevision.identity, EntryRevision.entry_id, EntryRevision.revision)
+                .where(EntryRevision.identity.in_([r.fingerprint for r in rows]))
+                .order_by(EntryRevision.revision)  # the latest revision with an identity wins
+            )
+        }
+        heads = dict(
+            session.execute(
+                select(EntryRevision.entry_id, func.max(EntryRevision.revision))
+                .where(EntryRevision.entry_id.in_([e for e, _ in known.values()]))
+                .group_by(EntryRevision.entry_id)
+            ).all()
+        )
+        plans, seen = [], {}
+        for row in rows:
+            if row.row_key in keyed:
+                plans.append(_keyed_plan(row, keyed[row.row_key], allow_revert))
+            elif row.fingerprint in known:
+                entry_id, revision = known[row.fingerprint]
+                later = heads[entry_id] > revision
+                note = f"the entry is now at revision {heads[entry_id]}" if later else ""
+                plans.append(RowPlan(row.row, "present", entry_id, revision, note=note))
+                if row.row_key:  # a key given to a row imported before it had one
+                    entry = session.get(Entry, entry_id)
+                    if entry is not None and entry.row_key is None:
+                        entry.row_key = row.row_key
+            elif row.fingerprint in seen:
+                plans.append(
+                    RowPlan(row.row, "present", note=f"same as row {seen[row.fingerprint]}")
+                )
+            else:
+                seen[row.fingerprint] = row.row
+                plans.append(RowPlan(row.row, "add"))
+        return plans
+
+    @staticmethod
+    def _source_for(
+        session: Session, row: SheetRow, where: str, new: list[str], create: bool = False
+    ) -> Source:
         source = session.scalar(select(Source).where(Source.key == row.source))
         info: dict[str, object] = dict(row.source_info)
         if "year" in info:
             info["year"] = int(str(info["year"]))
         if source is None:
+            if not create:
+                raise InputError(
+                    f"no source with key {row.source!r}: import its reference with "
+                    "`sources import` first, or give --create-sources",
+                    field="source",
+                    row=row.row,
+                    path=where,
+                )
             source = Source(key=row.source, **info)
             session.add(source)
             session.flush()
@@ -407,6 +724,7 @@ class Ledger:
             se=row.derived.se,
             scale=row.derived.scale,
             conversion=row.derived.conversion,
+            identity=row.fingerprint,
             corrections=list(row.derived.corrections),
             context=row.context,
             extra=row.extra,
@@ -464,7 +782,7 @@ class Ledger:
                 raise NotFoundError(f"no entry with id {entry_id}")
             views = tuple(EntryView.of(r) for r in entry.revisions)
             origin = f"{entry.origin.path} row {entry.row}" if entry.origin else None
-            return EntryHistory(views[-1], views, origin)
+            return EntryHistory(views[-1], views, origin, entry.row_key)
 
     def revision(self, entry_id: int, revision: int) -> EntryView:
         with self._sessions() as session:
@@ -493,11 +811,17 @@ class Ledger:
             if name in REQUIRED and not changes[name]:
                 raise InputError("a required value cannot be cleared", field=name, path=where)
         current = self.entry(entry_id).current
+        if current.context.get("design") == "expert" and "x_expert" in current.extra:
+            raise InputError(
+                "an elicited entry is fitted from its judgement sheet: correct the sheet and "
+                "run `elicit` again",
+                path=where,
+            )
         cells = {**current.cells, **changes}
         cells = {k: v for k, v in cells.items() if v != ""}
         if "citation" in cells or "doi" in cells or "year" in cells:
             raise InputError(
-                "sources are corrected by `sources import`, not on an entry",
+                "sources are corrected by `sources edit`, not on an entry",
                 field=next(k for k in ("citation", "doi", "year") if k in cells),
                 path=where,
             )
@@ -505,7 +829,7 @@ class Ledger:
             row = parse_row(cells)
         except InputError as error:
             raise error.located(path=where) from None
-        if row.fingerprint == parse_row(current.cells).fingerprint:
+        if row.content == parse_row(current.cells).content:
             raise InputError("the changes leave the entry as it is", field="--set", path=where)
         with self.transaction() as session:
             source = session.scalar(select(Source).where(Source.key == row.source))

@@ -61,6 +61,20 @@ class Source(Base):
     created_at: Mapped[datetime] = mapped_column(DateTime(timezone=True), default=utcnow)
 
 
+class SourceRevision(Base):
+    """One version of a source's metadata, kept when the source is edited or updated."""
+
+    __tablename__ = "source_revisions"
+    __table_args__ = (UniqueConstraint("source_id", "revision"),)
+
+    id: Mapped[int] = mapped_column(primary_key=True)
+    source_id: Mapped[int] = mapped_column(ForeignKey("sources.id"))
+    revision: Mapped[int] = mapped_column(Integer)
+    fields: Mapped[dict[str, object]] = mapped_column(JSON)
+    reason: Mapped[str] = mapped_column(Text)
+    created_at: Mapped[datetime] = mapped_column(DateTime(timezone=True), default=utcnow)
+
+
 class Study(Base):
     """One study, which several sources may report; a prior must not count it twice."""
 
@@ -91,8 +105,12 @@ class Entry(Base):
     __tablename__ = "entries"
 
     id: Mapped[int] = mapped_column(primary_key=True)
-    # Hash of the sheet row as first imported: importing the same row again adds nothing.
+    # Hash of the sheet row as first imported (its cells before migration 0004, its identity
+    # since); imports look rows up by the revisions' `identity`.
     fingerprint: Mapped[str] = mapped_column(String(64), unique=True)
+    # A curator's stable key for the sheet row: the row imported again revises this entry.
+    # (A unique index, not a constraint: SQLite can add one to an existing table.)
+    row_key: Mapped[str | None] = mapped_column(String(200), index=True, unique=True)
     import_id: Mapped[int | None] = mapped_column(ForeignKey("imports.id"))
     row: Mapped[int | None] = mapped_column(Integer)
     created_at: Mapped[datetime] = mapped_column(DateTime(timezone=True), default=utcnow)
@@ -122,6 +140,10 @@ class EntryRevision(Base):
     se: Mapped[float] = mapped_column(Float)
     scale: Mapped[str] = mapped_column(String(20))
     conversion: Mapped[str] = mapped_column(String(80))
+    # Canonical numbers with source, study, quantity and measure (`sheets.identity`). Set on
+    # every revision; nullable only because SQLite adds no NOT NULL column to a table that
+    # others refer to (migration 0004).
+    identity: Mapped[str | None] = mapped_column(String(64), index=True)
     corrections: Mapped[list[str]] = mapped_column(JSON, default=list)
     # Context and provenance columns of the extraction sheet, and any x_ columns.
     context: Mapped[dict[str, str]] = mapped_column(JSON, default=dict)
