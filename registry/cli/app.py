@@ -22,7 +22,7 @@ from typer._click.exceptions import ClickException, NoArgsIsHelpError
 from typer.core import TyperArgument, TyperCommand, TyperGroup
 
 from registry import __version__
-from registry.cli import demo_cmd, pool_cmd, prior_cmds, registry_cmds
+from registry.cli import demo_cmd, pool_cmd, prior_cmds, registry_cmds, report_cmds
 from registry.errors import LedgerError
 
 app = typer.Typer(
@@ -68,6 +68,8 @@ for command in (
 ):
     app.command(command.__name__)(command)
 app.command("demo")(demo_cmd.demo)
+app.command("report")(report_cmds.report)
+app.command("diff")(report_cmds.diff)
 
 
 # EX_SOFTWARE of BSD's sysexits.h, "an internal software error": a bug in priorledger.

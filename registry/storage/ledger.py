@@ -42,6 +42,10 @@ class SourceView:
     retracted: bool
     retraction_reason: str | None
     entries: int
+    created_at: str | None = None
+    created_by: str | None = None
+    retracted_at: str | None = None
+    retracted_by: str | None = None
 
     @classmethod
     def of(cls, source: Source, entries: int = 0) -> SourceView:
@@ -56,6 +60,10 @@ class SourceView:
             source.retracted,
             source.retraction_reason,
             entries,
+            _when(source.created_at),
+            source.created_by,
+            _when(source.retracted_at),
+            source.retracted_by,
         )
 
     def to_dict(self) -> dict[str, Any]:
@@ -86,6 +94,8 @@ class EntryView:
     citation: str | None = None
     doi: str | None = None
     retracted: bool = False
+    created_by: str | None = None
+    retraction_reason: str | None = None
 
     @classmethod
     def of(cls, rev: EntryRevision) -> EntryView:
@@ -110,6 +120,8 @@ class EntryView:
             citation=rev.source.citation,
             doi=rev.source.doi,
             retracted=rev.source.retracted,
+            created_by=rev.created_by,
+            retraction_reason=rev.source.retraction_reason,
         )
 
     @property
@@ -194,6 +206,10 @@ class SourceImportReport:
         }
 
 
+def _when(moment: datetime | None) -> str | None:
+    return None if moment is None else moment.isoformat()
+
+
 def _sha256(path: Path) -> str:
     return hashlib.sha256(path.read_bytes()).hexdigest()
 
@@ -238,8 +254,9 @@ class Ledger:
 
     # sources -------------------------------------------------------------------------------
 
-    def import_sources(self, path: str | Path) -> SourceImportReport:
-        """Add a bibliography's references; fill in fields a stub source lacks.
+    def import_sources(self, path: str | Path, *, user: str | None = None) -> SourceImportReport:
+        """Add a bibliography's references; fill in fields a stub source lacks. The import and
+        new sources are recorded under `user` (`registry.storage.db.who`).
 
         A reference whose key exists with a different value for a field already set is an
         error: a source is corrected deliberately, not by re-importing.
@@ -247,11 +264,12 @@ class Ledger:
         path = Path(path)
         records = read_bibliography(path)
         added, completed, unchanged = [], [], 0
+        by = db.who(user)
         with self.transaction() as session:
             for record in records:
                 source = session.scalar(select(Source).where(Source.key == record.key))
                 if source is None:
-                    session.add(Source(key=record.key, **record.fields()))
+                    session.add(Source(key=record.key, created_by=by, **record.fields()))
                     added.append(record.key)
                     continue
                 changes = self._merge_source(source, record.fields(), str(path), record.key)
@@ -266,6 +284,7 @@ class Ledger:
                     sha256=_sha256(path),
                     added=len(added),
                     skipped=unchanged,
+                    created_by=by,
                 )
             )
         return SourceImportReport(str(path), tuple(added), tuple(completed), unchanged)
@@ -303,8 +322,9 @@ class Ledger:
                 for s in session.scalars(select(Source).order_by(Source.key))
             ]
 
-    def retract(self, key: str, reason: str) -> SourceView:
-        """Flag a source as retracted; nothing is deleted and priors built on it say so."""
+    def retract(self, key: str, reason: str, *, user: str | None = None) -> SourceView:
+        """Flag a source as retracted; nothing is deleted and priors built on it say so.
+        The retraction is recorded under `user` (`registry.storage.db.who`)."""
         if not reason.strip():
             raise InputError("a retraction needs a reason", field="--reason")
         with self.transaction() as session:
@@ -316,17 +336,22 @@ class Ledger:
             source.retracted = True
             source.retraction_reason = reason.strip()
             source.retracted_at = datetime.now(UTC)
+            source.retracted_by = db.who(user)
             return SourceView.of(source)
 
     # entries -------------------------------------------------------------------------------
 
-    def import_sheet(self, path: str | Path, *, dry_run: bool = False) -> ImportReport:
+    def import_sheet(
+        self, path: str | Path, *, dry_run: bool = False, user: str | None = None
+    ) -> ImportReport:
         """Import every row of an extraction sheet, or none: one bad row writes nothing.
+        The import, its entries and new sources are recorded under `user` (`db.who`).
 
         A row already in the registry (same cells, from any sheet) is skipped and counted.
         """
         path = Path(path)
         rows = read_sheet(path)
+        by = db.who(user)
         with self.transaction(commit=not dry_run) as session:
             known = set(
                 session.scalars(
@@ -350,15 +375,22 @@ class Ledger:
                     sha256=_sha256(path),
                     added=len(fresh),
                     skipped=len(rows) - len(fresh),
+                    created_by=by,
                 )
                 session.add(record)
             for row in fresh:
-                source = self._source_for(session, row, str(path), new_sources)
+                source = self._source_for(session, row, str(path), new_sources, by)
                 entry = Entry(fingerprint=row.fingerprint, origin=record, row=row.row)
                 session.add(entry)
                 session.flush()
                 self._add_revision(
-                    session, entry.id, 1, row, source, f"imported from {path.name} row {row.row}"
+                    session,
+                    entry.id,
+                    1,
+                    row,
+                    source,
+                    f"imported from {path.name} row {row.row}",
+                    by,
                 )
                 added.append(entry.id)
         return ImportReport(
@@ -372,13 +404,15 @@ class Ledger:
         )
 
     @staticmethod
-    def _source_for(session: Session, row: SheetRow, where: str, new: list[str]) -> Source:
+    def _source_for(
+        session: Session, row: SheetRow, where: str, new: list[str], by: str | None
+    ) -> Source:
         source = session.scalar(select(Source).where(Source.key == row.source))
         info: dict[str, object] = dict(row.source_info)
         if "year" in info:
             info["year"] = int(str(info["year"]))
         if source is None:
-            source = Source(key=row.source, **info)
+            source = Source(key=row.source, created_by=by, **info)
             session.add(source)
             session.flush()
             new.append(row.source)
@@ -388,7 +422,13 @@ class Ledger:
 
     @staticmethod
     def _add_revision(
-        session: Session, entry_id: int, number: int, row: SheetRow, source: Source, reason: str
+        session: Session,
+        entry_id: int,
+        number: int,
+        row: SheetRow,
+        source: Source,
+        reason: str,
+        by: str | None,
     ) -> EntryRevision:
         study = session.scalar(select(Study).where(Study.key == row.study))
         if study is None:
@@ -411,6 +451,7 @@ class Ledger:
             context=row.context,
             extra=row.extra,
             reason=reason,
+            created_by=by,
         )
         session.add(revision)
         session.flush()
@@ -477,8 +518,16 @@ class Ledger:
                 raise NotFoundError(f"entry {entry_id} has no revision {revision}")
             return EntryView.of(rev)
 
-    def revise(self, entry_id: int, changes: Mapping[str, str], reason: str) -> EntryView:
-        """Add a revision with `changes` applied (an empty value clears a cell).
+    def revise(
+        self,
+        entry_id: int,
+        changes: Mapping[str, str],
+        reason: str,
+        *,
+        user: str | None = None,
+    ) -> EntryView:
+        """Add a revision with `changes` applied (an empty value clears a cell), recorded under
+        `user` (`registry.storage.db.who`).
 
         The derived numbers are recomputed and validated as on import.
         """
@@ -512,7 +561,13 @@ class Ledger:
             if source is None:
                 raise InputError(f"no source with key {row.source!r}", field="source", path=where)
             rev = self._add_revision(
-                session, entry_id, current.revision + 1, replace(row, row=0), source, reason.strip()
+                session,
+                entry_id,
+                current.revision + 1,
+                replace(row, row=0),
+                source,
+                reason.strip(),
+                db.who(user),
             )
             session.flush()
             session.refresh(rev)
