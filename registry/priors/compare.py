@@ -46,17 +46,20 @@ def changes(before: Mapping[str, Any], after: Mapping[str, Any]) -> list[Change]
     ]
 
 
-def by_domain(ratings: Any) -> dict[str, dict[str, Any]]:
-    """An entry's ratings (dicts with a `domain`) keyed by domain."""
-    return {r["domain"]: dict(r) for r in thaw(ratings)}
+def _rating(rating: Mapping[str, Any] | None) -> str | None:
+    if rating is None:
+        return None
+    why = f": {rating['rationale']}" if rating.get("rationale") else ""
+    return f"{rating['level']} ({rating['rule']}{why})"
 
 
 def rating_changes(before: Any, after: Any) -> list[Change]:
-    """Per domain, what of the rating (level, rule, reason) changed."""
-    old, new = by_domain(before), by_domain(after)
+    """One change per domain whose rating (level, rule or reason) differs, each side as
+    'level (rule: reason)'."""
+    old = {r["domain"]: dict(r) for r in thaw(before)}
+    new = {r["domain"]: dict(r) for r in thaw(after)}
     return [
-        Change(f"rating {domain} {c.key}", c.before, c.after)
+        Change(f"rating {domain}", _rating(old.get(domain)), _rating(new.get(domain)))
         for domain in sorted(set(old) | set(new))
-        for c in changes(old.get(domain, {}), new.get(domain, {}))
-        if c.key != "domain"
+        if old.get(domain) != new.get(domain)
     ]

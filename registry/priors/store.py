@@ -186,7 +186,12 @@ class Verification:
 
     @property
     def ok(self) -> bool:
-        return self.digest_matches and self.components_match and not self.stale
+        return (
+            self.digest_matches
+            and self.components_match
+            and not self.differences
+            and not self.stale
+        )
 
     def to_dict(self) -> dict[str, Any]:
         return {

@@ -64,7 +64,7 @@ def discount_forest_svg(rows: Sequence[ForestRow], scale: str) -> str:
     )
     ax.set_ylim(0.3, len(rows) + 0.7)
     ax.set_xlabel(f"estimate on the {scale} scale; grey: as reported, blue: after discount")
-    ax.set_title("Entries: 95% intervals before and after discount (share of information)")
+    ax.set_title("95% intervals before and after discount")
     figure.tight_layout()
     return _svg(figure)
 
@@ -90,7 +90,9 @@ def predictive_svg(
     robust: Component | None,
     caption: str,
 ) -> str:
-    """The exact density on `x` against the emitted prior (and its robust part, weighted)."""
+    """The exact density on `x` against the emitted prior; with a robust component (the last
+    one, `with_vague_component`), also the fitted mixture without it and the robust part alone
+    at its weight."""
     from matplotlib.figure import Figure
 
     figure = Figure(figsize=(8.0, 4.2))
@@ -105,6 +107,18 @@ def predictive_svg(
         label=f"emitted prior ({len(emitted.components)} components)",
     )
     if robust is not None:
+        fitted = emitted.components[:-1]
+        total = sum(c.weight for c in fitted)
+        informative = Prior.candidate(
+            emitted.scale, tuple(c.reweighted(c.weight / total) for c in fitted)
+        )
+        ax.plot(
+            x,
+            _on_analysis_scale(informative, analysis, x),
+            color="C0",
+            lw=1.2,
+            label="fitted mixture, without the robust part",
+        )
         alone = Prior.candidate(emitted.scale, (robust.reweighted(1.0),))
         ax.plot(
             x,

@@ -127,7 +127,7 @@ def _identity(stored: StoredPrior, check: Verification) -> Html:
     return Html(
         tag("h1", f"Prior {p.label}")
         + tag("p", p.parameter)
-        + tag("div", tag("strong", "Caution. "), CAUTION, class_="caution")
+        + tag("div", CAUTION, class_="caution")
         + pairs(
             [
                 ("name, version", p.label),
