@@ -265,3 +265,16 @@ def test_every_write_records_who(bcg: Path, tmp_path: Path, cli, monkeypatch) ->
     assert cli("build", definition_file(tmp_path), "--db", bcg).code == 0
     doc = json.loads(cli("prior", "bcg", "--db", bcg, "--json").stdout)
     assert doc["created_by"] == "from-env" and doc["created_at"]
+
+
+def test_every_conversion_in_the_evidence_tests_has_a_published_source() -> None:
+    """The conversion -> source table covers every conversion the worked examples and the
+    reference-library cases of tests/test_evidence.py produce."""
+    from registry.evidence.convert import derive
+    from tests.test_evidence import PUBLISHED, REFERENCES, WAN_CASES
+
+    names = {derive(c.measure, c.reported).conversion for c in (*PUBLISHED, *REFERENCES)}
+    names |= {derive("mean", reported).conversion for _, reported in WAN_CASES}
+    assert len(names) > 10
+    missing = sorted(n for n in names if conversion_source(n) is None)
+    assert missing == []
