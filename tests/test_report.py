@@ -19,7 +19,7 @@ from registry.demo import run_demo, seed_path
 from registry.evidence.convert import conversion_source
 from registry.priors.definition import load_definition
 from registry.priors.diff import diff_priors
-from registry.priors.store import build_prior, trace_prior
+from registry.priors.store import build_prior, selection, trace_prior
 from registry.report.html import write_report
 from registry.storage.ledger import Ledger
 from tests.test_priors import BASE, bcg, definition_file  # noqa: F401 (bcg is a fixture)
@@ -135,6 +135,10 @@ def test_trace_lists_every_revision_and_its_reason(demo, cli) -> None:
         assert reason in result.stdout
     assert "left out by the selection" in result.stdout
     assert "another report of study INV-TRIAL-ALDREN" in result.stdout
+    chosen = selection(ledger, load_definition(seed_path("falls-control-rate.toml")))
+    assert [(x.id, x.reasons) for x in chosen.left_out] == [
+        (19, ("excluded by id (select.exclude lists 19)",))
+    ]
     doc = json.loads(cli("trace", label, "--db", db, "--json").stdout)
     revised = next(e for e in doc["entries"] if len(e["revisions"]) == 3)
     assert [r["created_by"] for r in revised["revisions"][1:]] == ["reviewer-a", "reviewer-b"]

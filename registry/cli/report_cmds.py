@@ -17,7 +17,7 @@ def _summary_line(s: Summary) -> str:
     ess = ", ".join(f"{m} {'none' if v is None else format(v, '.1f')}" for m, v in s.ess.items())
     return (
         f"{s.components} components on the {s.scale} scale; mean {s.mean:.4g}, sd {s.sd:.4g}, "
-        f"95% interval [{s.interval[0]:.4g}, {s.interval[1]:.4g}]; ESS {ess} {s.ess_unit}"
+        f"95% interval [{s.interval_95[0]:.4g}, {s.interval_95[1]:.4g}]; ESS {ess} {s.ess_unit}"
     )
 
 

@@ -7,7 +7,7 @@ Changes are named key by key (`registry.priors.compare`), the way `verify` names
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import asdict, dataclass
 from typing import Any
 
 from registry.priors.compare import Change, changes, rating_changes
@@ -24,7 +24,7 @@ class Summary:
     components: int
     mean: float
     sd: float
-    interval: tuple[float, float]
+    interval_95: tuple[float, float]
     ess: dict[str, float | None]
     ess_unit: str
 
@@ -42,15 +42,7 @@ class Summary:
         )
 
     def to_dict(self) -> dict[str, Any]:
-        return {
-            "scale": self.scale,
-            "components": self.components,
-            "mean": self.mean,
-            "sd": self.sd,
-            "interval_95": list(self.interval),
-            "ess": dict(self.ess),
-            "ess_unit": self.ess_unit,
-        }
+        return {**asdict(self), "interval_95": list(self.interval_95)}
 
 
 @dataclass(frozen=True)

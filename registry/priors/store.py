@@ -6,7 +6,7 @@ Persistence is `registry.storage.priors`; the computation is `registry.priors.bu
 from __future__ import annotations
 
 from collections.abc import Iterable
-from dataclasses import dataclass, field
+from dataclasses import asdict, dataclass, field
 from typing import Any
 
 from registry import __version__
@@ -28,6 +28,7 @@ __all__ = [
     "left_out",
     "list_priors",
     "select_entries",
+    "selection",
     "trace_prior",
     "verify_prior",
 ]
@@ -44,13 +45,26 @@ class LeftOut:
     reasons: tuple[str, ...]
 
     def to_dict(self) -> dict[str, Any]:
-        return {
-            "id": self.id,
-            "revision": self.revision,
-            "source": self.source,
-            "study": self.study,
-            "reasons": list(self.reasons),
-        }
+        return {**asdict(self), "reasons": list(self.reasons)}
+
+
+@dataclass(frozen=True)
+class Selection:
+    """The entries a definition selects, and those its filters match but it leaves out."""
+
+    chosen: tuple[EntryView, ...]
+    left_out: tuple[LeftOut, ...]
+
+
+def _matching(ledger: Ledger, definition: Definition, include_retracted: bool) -> list[EntryView]:
+    """The current entries the definition's filters (quantity, measure, tags, sources) match."""
+    return ledger.entries(
+        quantity=definition["select.quantity"],
+        measure=definition["select.measure"],
+        tags=definition["select.tags"],
+        sources=definition["select.sources"],
+        include_retracted=include_retracted,
+    )
 
 
 def _why_left_out(entry: EntryView, definition: Definition) -> tuple[str, ...]:
@@ -80,13 +94,7 @@ def left_out(ledger: Ledger, definition: Definition, used: Iterable[int]) -> lis
     but that are not among `used`, each with the reasons the selection gives for leaving it
     out: excluded by id or tag, another report of the same study, a retracted source."""
     used = set(used)
-    matched = ledger.entries(
-        quantity=definition["select.quantity"],
-        measure=definition["select.measure"],
-        tags=definition["select.tags"],
-        sources=definition["select.sources"],
-        include_retracted=True,
-    )
+    matched = _matching(ledger, definition, include_retracted=True)
     return [
         LeftOut(e.id, e.revision, e.source, e.study, _why_left_out(e, definition))
         for e in matched
@@ -100,13 +108,7 @@ def select_entries(ledger: Ledger, definition: Definition) -> list[EntryView]:
     Entries from retracted sources are left out unless `select.include_retracted` is true.
     """
     retracted_too = definition["select.include_retracted"]
-    chosen = ledger.entries(
-        quantity=definition["select.quantity"],
-        measure=definition["select.measure"],
-        tags=definition["select.tags"],
-        sources=definition["select.sources"],
-        include_retracted=retracted_too,
-    )
+    chosen = _matching(ledger, definition, retracted_too)
     excluded_tags = set(definition["select.exclude_tags"])
     excluded = set(definition["select.exclude"])
     chosen = [e for e in chosen if e.id not in excluded and not excluded_tags & set(e.tags)]
@@ -142,6 +144,13 @@ def select_entries(ledger: Ledger, definition: Definition) -> list[EntryView]:
     if not chosen:
         raise InputError("the selection matches no entries", field="select", path=definition.path)
     return chosen
+
+
+def selection(ledger: Ledger, definition: Definition) -> Selection:
+    """What `select_entries` chooses, with every entry the filters match that it leaves out
+    and why (excluded by id or tag, another report of the same study, a retracted source)."""
+    chosen = select_entries(ledger, definition)
+    return Selection(tuple(chosen), tuple(left_out(ledger, definition, [e.id for e in chosen])))
 
 
 def build_prior(ledger: Ledger, definition: Definition, *, user: str | None = None) -> StoredPrior:

@@ -158,7 +158,7 @@ def _summary(stored: StoredPrior) -> Html:
         ("scale", f"{s.scale} ({stored.prior.measure})"),
         ("target", result.target),
         ("mean, sd", f"{s.mean:.6g}, {s.sd:.6g}"),
-        ("central 95% interval", f"[{s.interval[0]:.6g}, {s.interval[1]:.6g}]"),
+        ("central 95% interval", f"[{s.interval_95[0]:.6g}, {s.interval_95[1]:.6g}]"),
         ("global power weight", result.global_power),
     ]
     if result.plausible is not None:
