@@ -175,8 +175,9 @@ def verify(label: Label, db: DbOption = None, as_json: JsonOption = False) -> No
         for line in (*result.differences, *result.stale):
             out.print(f"  {line}")
     if not result.ok:
-        count = len(result.differences) + len(result.stale)
-        raise CheckFailed(f"{result.label} does not verify: {count} differences (listed above)")
+        raise CheckFailed(
+            f"{result.label} does not verify: " + "; ".join((*result.differences, *result.stale))
+        )
 
 
 def trace(label: Label, db: DbOption = None, as_json: JsonOption = False) -> None:

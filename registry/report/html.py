@@ -175,7 +175,6 @@ def _summary(stored: StoredPrior) -> Html:
             for c in stored.prior.components
         ],
     )
-    pooled = {k: v for k, v in dict(result.pooled).items() if not isinstance(v, dict | list)}
     return Html(
         tag("h2", "The prior")
         + pairs(rows)
@@ -183,7 +182,7 @@ def _summary(stored: StoredPrior) -> Html:
         + tag("h3", "Notes of the build")
         + tag("ul", *(tag("li", n) for n in result.notes))
         + tag("h3", "Pooled result")
-        + pairs(sorted(pooled.items()))
+        + pairs(sorted(result.pooled.items()))
     )
 
 
