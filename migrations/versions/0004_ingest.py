@@ -1,7 +1,7 @@
 """row identity by parsed values, curator row keys, revisions of source metadata
 
 Revision ID: 0004
-Revises: 0002
+Revises: 0003
 Create Date: 2026-12-02
 
 Each entry revision gets `identity`: the hash of its canonical numbers with its source,
@@ -19,7 +19,7 @@ from alembic import op
 from registry.evidence.sheets import canonical, identity, parse_number
 
 revision = "0004"
-down_revision = "0002"
+down_revision = "0003"
 branch_labels = None
 depends_on = None
 
@@ -73,6 +73,7 @@ def upgrade() -> None:
         sa.Column("fields", sa.JSON(), nullable=False),
         sa.Column("reason", sa.Text(), nullable=False),
         sa.Column("created_at", sa.DateTime(timezone=True), nullable=False),
+        sa.Column("created_by", sa.String(length=200), nullable=True),
         sa.ForeignKeyConstraint(
             ["source_id"], ["sources.id"], name=op.f("fk_source_revisions_source_id_sources")
         ),

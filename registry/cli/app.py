@@ -30,6 +30,7 @@ from registry.cli import (
     pool_cmd,
     prior_cmds,
     registry_cmds,
+    report_cmds,
 )
 from registry.errors import LedgerError
 
@@ -80,6 +81,8 @@ for command in (check_cmds.predict, check_cmds.update, check_cmds.sensitivity):
     app.command(command.__name__)(command)
 app.command("design")(design_cmd.design)
 app.command("elicit")(elicit_cmd.elicit)
+app.command("report")(report_cmds.report)
+app.command("diff")(report_cmds.diff)
 
 
 # EX_SOFTWARE of BSD's sysexits.h, "an internal software error": a bug in priorledger.

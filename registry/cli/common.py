@@ -30,6 +30,16 @@ DbOption = Annotated[
         show_default=False,
     ),
 ]
+UserOption = Annotated[
+    str | None,
+    typer.Option(
+        "--user",
+        envvar="PRIORLEDGER_USER",
+        metavar="NAME",
+        help="Who makes this change (default: PRIORLEDGER_USER, else your login name).",
+        show_default=False,
+    ),
+]
 JsonOption = Annotated[
     bool, typer.Option("--json", help="Print exactly one JSON document on stdout.")
 ]

@@ -13,6 +13,7 @@ from registry.caution import CAUTION
 from registry.cli.common import (
     DbOption,
     JsonOption,
+    UserOption,
     err,
     ledger,
     make_table,
@@ -54,6 +55,10 @@ def show(stored: StoredPrior) -> None:
             ("STALE", "red") if stored.stale else "current",
         )
     )
+    out.print(
+        f"  built       {stored.created_at[:19]} by {stored.created_by or '-'} "
+        f"(priorledger {stored.software_version})"
+    )
     out.print(f"  parameter   {p.parameter}")
     out.print(f"  scale       {p.scale}")
     out.print(f"  prior       {_components(stored)}")
@@ -75,6 +80,7 @@ def build(
     strict: Annotated[
         bool, typer.Option("--strict", help="A rule that matches no selected entry is an error.")
     ] = False,
+    user: UserOption = None,
     db: DbOption = None,
     as_json: JsonOption = False,
 ) -> None:
@@ -86,7 +92,7 @@ def build(
     from registry.priors.store import build_prior
 
     with err.status("building the prior"):
-        stored = build_prior(ledger(db), load_definition(file), strict=strict)
+        stored = build_prior(ledger(db), load_definition(file), strict=strict, user=user)
     for warning in stored.result.warnings:
         err.print(f"warning: {warning}")
     if as_json:
@@ -153,7 +159,8 @@ def prior(label: Label, db: DbOption = None, as_json: JsonOption = False) -> Non
 
 
 def verify(label: Label, db: DbOption = None, as_json: JsonOption = False) -> None:
-    """Rebuild a prior from what was stored; exit 1 if it differs or has gone stale.
+    """Rebuild a prior from what was stored; exit 1 if it differs or has gone stale (one line
+    per difference names the setting, entry revision or component that changed).
 
     Example: priorledger verify falls-control-rate
     """
@@ -177,7 +184,8 @@ def verify(label: Label, db: DbOption = None, as_json: JsonOption = False) -> No
 
 
 def trace(label: Label, db: DbOption = None, as_json: JsonOption = False) -> None:
-    """Trace a prior to its entries, their ratings, sources and the numbers as reported.
+    """Trace a prior to its entries (every revision and its reason), their ratings, sources, the
+    numbers as reported, and the entries its selection left out.
 
     Example: priorledger trace falls-programme-effect --json
     """
@@ -193,7 +201,11 @@ def trace(label: Label, db: DbOption = None, as_json: JsonOption = False) -> Non
 def trace_tree(doc: dict, *, short: bool = False) -> Tree:
     """The trace as a tree; `short` keeps one line an entry."""
     tree = Tree(
-        Text.assemble((doc["prior"], "bold"), f" ({doc['scale']}) digest {doc['digest'][:16]}")
+        Text.assemble(
+            (doc["prior"], "bold"),
+            f" ({doc['scale']}) digest {doc['digest'][:16]}, built {doc['created_at'][:19]} "
+            f"by {doc['created_by'] or '-'}",
+        )
     )
     defn = doc["definition"]
     tree.add(
@@ -223,6 +235,18 @@ def trace_tree(doc: dict, *, short: bool = False) -> Tree:
             + ", ".join(f"{k}={v}" for k, v in e["reported"].items())
             + f" -> {e['conversion']} -> y {e['y']:.4f}, se {e['se']:.4f} ({e['scale']})"
         )
+        revisions = node.add("revisions")
+        for r in e["revisions"]:
+            revisions.add(
+                f"{r['revision']}{' (used)' if r['used'] else ''} {r['created_at'][:19]} "
+                f"by {r['created_by'] or '-'}: {r['reason']}"
+            )
+    if doc["left_out"]:
+        left = tree.add("left out by the selection")
+        for x in doc["left_out"]:
+            left.add(
+                f"entry {x['id']} rev {x['revision']} ({x['source']}): {'; '.join(x['reasons'])}"
+            )
     return tree
 
 

@@ -18,6 +18,7 @@ from registry.cli.common import (
     SetOption,
     SourceOption,
     TagOption,
+    UserOption,
     err,
     ledger,
     make_table,
@@ -66,6 +67,7 @@ def import_sheet(
         ),
     ] = False,
     create_sources: CreateSourcesOption = False,
+    user: UserOption = None,
     db: DbOption = None,
     as_json: JsonOption = False,
 ) -> None:
@@ -82,6 +84,7 @@ def import_sheet(
         reason=reason,
         allow_revert=allow_revert,
         create_sources=create_sources,
+        user=user,
     )
     if as_json:
         print_json(report.to_dict())
@@ -105,14 +108,17 @@ def sources_list(ctx: typer.Context, db: DbOption = None, as_json: JsonOption = 
     if as_json:
         print_json({"sources": [v.to_dict() for v in views]})
         return
-    table = make_table("key", "year", "doi", "entries", "retracted", "citation")
+    table = make_table("key", "year", "doi", "entries", "retracted", "added", "citation")
     for v in views:
         table.add_row(
             v.key,
             str(v.year or ""),
             v.doi or "",
             str(v.entries),
-            f"yes: {v.retraction_reason}" if v.retracted else "",
+            f"yes: {v.retraction_reason} ({_by(v.retracted_by, v.retracted_at)})"
+            if v.retracted
+            else "",
+            _by(v.created_by, v.created_at),
             v.citation or "",
         )
     out.print(table)
@@ -135,6 +141,7 @@ def sources_import(
             "--reason", metavar="TEXT", help='Why, with --update (default "updated from FILE").'
         ),
     ] = None,
+    user: UserOption = None,
     db: DbOption = None,
     as_json: JsonOption = False,
 ) -> None:
@@ -142,7 +149,7 @@ def sources_import(
 
     Example: priorledger sources import refs.bib
     """
-    report = ledger(db).import_sources(file, update=update, reason=reason)
+    report = ledger(db).import_sources(file, update=update, reason=reason, user=user)
     if as_json:
         print_json(report.to_dict())
         return
@@ -157,6 +164,7 @@ def sources_edit(
     key: Annotated[str, typer.Argument(metavar="KEY", help="Citation key of the source.")],
     set_: SetOption,
     reason: Annotated[str, typer.Option("--reason", metavar="TEXT", help="Why it is changed.")],
+    user: UserOption = None,
     db: DbOption = None,
     as_json: JsonOption = False,
 ) -> None:
@@ -166,7 +174,7 @@ def sources_edit(
 
     Example: priorledger sources edit smith2019 --set year=2020 --reason "online first 2019"
     """
-    view = ledger(db).edit_source(key, _parse_set(set_), reason)
+    view = ledger(db).edit_source(key, _parse_set(set_), reason, user=user)
     if as_json:
         print_json(view.to_dict())
         return
@@ -201,6 +209,7 @@ def sources_show(
 def sources_retract(
     key: Annotated[str, typer.Argument(metavar="KEY", help="Citation key of the source.")],
     reason: Annotated[str, typer.Option("--reason", metavar="TEXT", help="Why it is retracted.")],
+    user: UserOption = None,
     db: DbOption = None,
     as_json: JsonOption = False,
 ) -> None:
@@ -208,7 +217,7 @@ def sources_retract(
 
     Example: priorledger sources retract smith2019 --reason "retracted by the journal, 2024"
     """
-    view = ledger(db).retract(key, reason)
+    view = ledger(db).retract(key, reason, user=user)
     if as_json:
         print_json(view.to_dict())
         return
@@ -299,10 +308,22 @@ def entries_show(
         out.print(f"  tags     {'; '.join(cur.tags)}")
     if history.imported_from:
         out.print(f"  imported from {history.imported_from}")
-    table = make_table("rev", "when", "reason", "y", "se")
+    table = make_table("rev", "when", "by", "reason", "y", "se")
     for r in history.revisions:
-        table.add_row(str(r.revision), r.created_at[:19], r.reason, number(r.y), number(r.se))
+        table.add_row(
+            str(r.revision),
+            r.created_at[:19],
+            r.created_by or "-",
+            r.reason,
+            number(r.y),
+            number(r.se),
+        )
     out.print(table)
+
+
+def _by(user: str | None, when: str | None) -> str:
+    """Who and when, for a listing; '-' for what older registries did not record."""
+    return f"{user or '-'} {when[:19] if when else '-'}"
 
 
 def _parse_set(values: list[str]) -> dict[str, str]:
@@ -321,6 +342,7 @@ def revise(
     reason: Annotated[
         str, typer.Option("--reason", metavar="TEXT", help="Why the entry is corrected.")
     ],
+    user: UserOption = None,
     db: DbOption = None,
     as_json: JsonOption = False,
 ) -> None:
@@ -328,7 +350,7 @@ def revise(
 
     Example: priorledger revise 3 --set upper=0.95 --reason "typo: Table 2 says 0.95"
     """
-    view = ledger(db).revise(entry_id, _parse_set(set_), reason)
+    view = ledger(db).revise(entry_id, _parse_set(set_), reason, user=user)
     if as_json:
         print_json(view.to_dict())
         return

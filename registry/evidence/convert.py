@@ -504,6 +504,50 @@ _FORMS: tuple[_Form, ...] = (  # the order breaks ties: earlier forms are prefer
 )
 
 
+_BORENSTEIN = "Borenstein, Hedges, Higgins & Rothstein (2009), Introduction to Meta-Analysis"
+_CHINN_2000 = f"Chinn (2000), Statistics in Medicine 19:3127; {_BORENSTEIN}, ch. 7"
+_WAN = (
+    "Wan, Wang, Liu & Tong (2014), BMC Medical Research Methodology 14:135 "
+    "(formulas recalled from memory)"
+)
+# conversion name stored on an entry -> the published source of its formula, as the docstring
+# of the function above that computes it gives it; a scale suffix (_log, _logit, _fisher_z)
+# keeps its base's source (`conversion_source`).
+CONVERSION_SOURCES: dict[str, str] = {
+    "ci": "Cochrane Handbook v6, section 6.3.1 (section 6.3.2 for ratios on the log scale)",
+    "se": "the standard error as reported (common practice)",
+    "se_delta": "the delta method, se_g = |g'(estimate)| se (common practice)",
+    "p_value": "Cochrane Handbook v6, sections 6.3.1 and 6.3.2 (section numbers recalled)",
+    "logit_counts": "large-sample variance of a binomial logit (common practice)",
+    "log_rate_counts": "log of a Poisson rate, variance 1/events (common practice)",
+    "log_odds_ratio_2x2": f"{_BORENSTEIN}, ch. 5",
+    "log_risk_ratio_2x2": f"{_BORENSTEIN}, ch. 5",
+    "risk_difference_2x2": f"{_BORENSTEIN}, ch. 5",
+    "chinn_smd_from_log_odds_ratio": _CHINN_2000,
+    "log_rate_ratio_counts": "log rate ratio, variance 1/e_a + 1/e_b (common practice)",
+    "hedges_g": f"{_BORENSTEIN}, ch. 4",
+    "mean_difference_groups": f"{_BORENSTEIN}, ch. 4",
+    "chinn_log_odds_ratio_from_smd": _CHINN_2000,
+    "mean_sd_n": "Cochrane Handbook v6, section 6.5.2.2",
+    "wan_five_number": _WAN,
+    "wan_median_range": _WAN,
+    "wan_median_iqr": _WAN,
+    "fisher_z": f"Fisher (1921); {_BORENSTEIN}, ch. 6",
+}
+CONTINUITY_SOURCE = "0.5 added to zero cells (common practice; Cochrane Handbook v6, 10.4.4.2)"
+
+
+def conversion_source(name: str) -> str | None:
+    """The published source of conversion `name` (None for a name this table does not know)."""
+    if name in CONVERSION_SOURCES:
+        return CONVERSION_SOURCES[name]
+    for scale in ANALYSIS_SCALE.values():
+        suffix = _suffix(scale)
+        if suffix and name.endswith(suffix) and name[: -len(suffix)] in CONVERSION_SOURCES:
+            return CONVERSION_SOURCES[name[: -len(suffix)]]
+    return None
+
+
 # ---------------------------------------------------------------------------------------
 # Validation and form selection
 

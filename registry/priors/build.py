@@ -69,11 +69,13 @@ class Rated:
 
 @dataclass(frozen=True)
 class Construction:
-    """Everything a build computes; `result` is what the registry stores."""
+    """Everything a build computes; `result` is what the registry stores, `target` the exact
+    distribution the prior's components approximate (for figures and checks)."""
 
     digest: str
     result: BuildResult
     rated: tuple[Rated, ...]
+    target: Target | None = field(default=None, repr=False, compare=False)
 
     @property
     def scale(self) -> str:
@@ -451,6 +453,7 @@ class _Run:
     """Steps 2-6 at one global power weight."""
 
     pooled: Any
+    target: Target
     discounts: tuple[Discount, ...]
     fitted: Fitted
     components: tuple[Component, ...]
@@ -515,7 +518,7 @@ def _at_power(
         unit=model.unit,
         likelihood=model.likelihood,
     )
-    return _Run(pooled, discounts, fitted, components, model, ess, robust)
+    return _Run(pooled, target, discounts, fitted, components, model, ess, robust)
 
 
 def unmatched_rules(definition: Definition, entries: Sequence[EntryLike]) -> list[str]:
@@ -610,7 +613,7 @@ def construct(
         robust=run.robust,
         include_retracted=definition["select.include_retracted"],
     )
-    return Construction(digest, result, rated)
+    return Construction(digest, result, rated, run.target)
 
 
 def _plausible(

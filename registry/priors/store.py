@@ -5,12 +5,15 @@ Persistence is `registry.storage.priors`; the computation is `registry.priors.bu
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from collections.abc import Iterable
+from dataclasses import asdict, dataclass, field
 from typing import Any
 
+from registry import __version__
 from registry.caution import CAUTION
 from registry.errors import InputError
 from registry.priors.build import Construction, construct
+from registry.priors.compare import Change, changes, rating_changes
 from registry.priors.definition import Definition, definition_from_canonical
 from registry.priors.selection import repeated_studies
 from registry.storage.ledger import EntryView, Ledger
@@ -18,14 +21,85 @@ from registry.storage.priors import StoredPrior, Use, list_versions, load_versio
 from registry.values.frozen import thaw
 
 __all__ = [
+    "LeftOut",
     "StoredPrior",
     "build_prior",
     "get_prior",
+    "left_out",
     "list_priors",
     "select_entries",
+    "selection",
     "trace_prior",
     "verify_prior",
 ]
+
+
+@dataclass(frozen=True)
+class LeftOut:
+    """An entry the selection's filters match that a prior does not use, and why."""
+
+    id: int
+    revision: int
+    source: str
+    study: str
+    reasons: tuple[str, ...]
+
+    def to_dict(self) -> dict[str, Any]:
+        return {**asdict(self), "reasons": list(self.reasons)}
+
+
+@dataclass(frozen=True)
+class Selection:
+    """The entries a definition selects, and those its filters match but it leaves out."""
+
+    chosen: tuple[EntryView, ...]
+    left_out: tuple[LeftOut, ...]
+
+
+def _matching(ledger: Ledger, definition: Definition, include_retracted: bool) -> list[EntryView]:
+    """The current entries the definition's filters (quantity, measure, tags, sources) match."""
+    return ledger.entries(
+        quantity=definition["select.quantity"],
+        measure=definition["select.measure"],
+        tags=definition["select.tags"],
+        sources=definition["select.sources"],
+        include_retracted=include_retracted,
+    )
+
+
+def _why_left_out(entry: EntryView, definition: Definition) -> tuple[str, ...]:
+    reasons = []
+    if entry.id in definition["select.exclude"]:
+        reasons.append(f"excluded by id (select.exclude lists {entry.id})")
+    tags = sorted(set(definition["select.exclude_tags"]) & set(entry.tags))
+    if tags:
+        reasons.append(f"excluded by tag {', '.join(tags)} (select.exclude_tags)")
+    keep = definition["select.studies"].get(entry.study)
+    if keep is not None and keep != entry.id:
+        reasons.append(
+            f"another report of study {entry.study}; entry {keep} stands for it (select.studies)"
+        )
+    if entry.retracted and not definition["select.include_retracted"]:
+        reasons.append(
+            f"source {entry.source} is retracted"
+            + (f": {entry.retraction_reason}" if entry.retraction_reason else "")
+        )
+    return tuple(reasons) or (
+        "not in this version: the entry was added or changed after it was built",
+    )
+
+
+def left_out(ledger: Ledger, definition: Definition, used: Iterable[int]) -> list[LeftOut]:
+    """The current entries the definition's filters (quantity, measure, tags, sources) match
+    but that are not among `used`, each with the reasons the selection gives for leaving it
+    out: excluded by id or tag, another report of the same study, a retracted source."""
+    used = set(used)
+    matched = _matching(ledger, definition, include_retracted=True)
+    return [
+        LeftOut(e.id, e.revision, e.source, e.study, _why_left_out(e, definition))
+        for e in matched
+        if e.id not in used
+    ]
 
 
 def select_entries(ledger: Ledger, definition: Definition) -> list[EntryView]:
@@ -34,13 +108,7 @@ def select_entries(ledger: Ledger, definition: Definition) -> list[EntryView]:
     Entries from retracted sources are left out unless `select.include_retracted` is true.
     """
     retracted_too = definition["select.include_retracted"]
-    chosen = ledger.entries(
-        quantity=definition["select.quantity"],
-        measure=definition["select.measure"],
-        tags=definition["select.tags"],
-        sources=definition["select.sources"],
-        include_retracted=retracted_too,
-    )
+    chosen = _matching(ledger, definition, retracted_too)
     excluded_tags = set(definition["select.exclude_tags"])
     excluded = set(definition["select.exclude"])
     chosen = [e for e in chosen if e.id not in excluded and not excluded_tags & set(e.tags)]
@@ -78,10 +146,20 @@ def select_entries(ledger: Ledger, definition: Definition) -> list[EntryView]:
     return chosen
 
 
-def build_prior(ledger: Ledger, definition: Definition, *, strict: bool = False) -> StoredPrior:
-    """Build `definition` on the registry's current entries and store it as a new version,
-    unless the latest version has the same digest (then that version is returned).
-    `strict` makes a rule that matches no selected entry an error."""
+def selection(ledger: Ledger, definition: Definition) -> Selection:
+    """What `select_entries` chooses, with every entry the filters match that it leaves out
+    and why (excluded by id or tag, another report of the same study, a retracted source)."""
+    chosen = select_entries(ledger, definition)
+    return Selection(tuple(chosen), tuple(left_out(ledger, definition, [e.id for e in chosen])))
+
+
+def build_prior(
+    ledger: Ledger, definition: Definition, *, strict: bool = False, user: str | None = None
+) -> StoredPrior:
+    """Build `definition` on the registry's current entries and store it as a new version
+    recorded under `user` (`registry.storage.db.who`), unless the latest version has the
+    same digest (then that version is returned). `strict` makes a rule that matches no
+    selected entry an error."""
     entries = select_entries(ledger, definition)
     built = construct(definition, entries, strict=strict)
     uses = [
@@ -95,7 +173,7 @@ def build_prior(ledger: Ledger, definition: Definition, *, strict: bool = False)
         for r in built.rated
     ]
     return save_version(
-        ledger, definition.name, built.digest, definition.canonical(), built.result, uses
+        ledger, definition.name, built.digest, definition.canonical(), built.result, uses, user=user
     )
 
 
@@ -120,7 +198,12 @@ class Verification:
 
     @property
     def ok(self) -> bool:
-        return self.digest_matches and self.components_match and not self.stale
+        return (
+            self.digest_matches
+            and self.components_match
+            and not self.differences
+            and not self.stale
+        )
 
     def to_dict(self) -> dict[str, Any]:
         return {
@@ -134,22 +217,43 @@ class Verification:
 
 
 def verify_prior(ledger: Ledger, label: str) -> Verification:
-    """Rebuild from the stored definition and the exact entry revisions used; compare."""
+    """Rebuild from the stored definition and the exact entry revisions used; compare, and
+    say in one line per difference which setting, entry revision or component changed."""
     stored = get_prior(ledger, label)
     definition = definition_from_canonical(thaw(stored.definition))
     entries = [ledger.revision(u.id, u.revision) for u in stored.uses]
     rebuilt = construct(definition, entries, rebuild=True)
-    differences = []
-    digest_ok = rebuilt.digest == stored.prior.digest
-    if not digest_ok:
-        differences.append(
-            f"digest {rebuilt.digest[:12]} rebuilt, {stored.prior.digest[:12]} stored"
-        )
+    differences = [
+        f"setting {c.text()} (stored -> as read now)"
+        for c in changes(stored.definition, definition.canonical())
+    ]
+    for use, rated in zip(stored.uses, rebuilt.rated, strict=True):
+        here = f"entry {use.id} revision {use.revision}:"
+        found = [
+            *rating_changes(use.ratings, [r.to_dict() for r in rated.ratings]),
+            *(
+                Change(f"discount {c.key}", c.before, c.after)
+                for c in changes(use.discount, rated.discount.to_dict())
+            ),
+            *changes({"weight": use.share}, {"weight": rated.share}),
+        ]
+        differences += [f"{here} {c.text()} (stored -> rebuilt)" for c in found]
     want = [c.to_dict() for c in stored.result.components]
     got = [c.to_dict() for c in rebuilt.components]
     components_ok = want == got
-    if not components_ok:
-        differences.append(f"components rebuilt as {got}, stored as {want}")
+    if len(want) != len(got):
+        differences.append(f"components: {len(want)} stored -> {len(got)} rebuilt")
+    for i, (a, b) in enumerate(zip(want, got, strict=False), start=1):
+        differences += [f"component {i}: {c.text()} (stored -> rebuilt)" for c in changes(a, b)]
+    digest_ok = rebuilt.digest == stored.prior.digest
+    if not digest_ok:
+        differences.append(
+            f"digest {stored.prior.digest[:12]} stored -> {rebuilt.digest[:12]} rebuilt"
+        )
+    if differences and stored.software_version != __version__:
+        differences.append(
+            f"built by priorledger {stored.software_version}, rebuilt by {__version__}"
+        )
     return Verification(
         stored.prior.label, digest_ok, components_ok, tuple(differences), stored.stale, rebuilt
     )
@@ -157,15 +261,29 @@ def verify_prior(ledger: Ledger, label: str) -> Verification:
 
 def trace_prior(ledger: Ledger, label: str) -> dict[str, Any]:
     """Prior -> definition -> each entry (revision, ratings, weight) -> source -> reported
-    numbers -> conversion -> y, se: what a reviewer needs without opening the database."""
+    numbers -> conversion -> y, se: what a reviewer needs without opening the database; with
+    every revision of each entry and its reason, and the entries the selection left out."""
     stored = get_prior(ledger, label)
     entries = []
     for use in stored.uses:
-        view = ledger.revision(use.id, use.revision)
+        history = ledger.entry(use.id).revisions
+        view = next(r for r in history if r.revision == use.revision)
         entries.append(
             {
                 **use.to_dict(),
                 "revision_reason": view.reason,
+                "revisions": [
+                    {
+                        "revision": r.revision,
+                        "reason": r.reason,
+                        "created_at": r.created_at,
+                        "created_by": r.created_by,
+                        "y": r.y,
+                        "se": r.se,
+                        "used": r.revision == use.revision,
+                    }
+                    for r in history
+                ],
                 "study": view.study,
                 "source": {
                     "key": view.source,
@@ -194,6 +312,17 @@ def trace_prior(ledger: Ledger, label: str) -> dict[str, Any]:
         "pooled": thaw(stored.result.pooled),
         "notes": list(stored.result.notes),
         "stale": list(stored.stale),
+        "created_at": stored.created_at,
+        "created_by": stored.created_by,
+        "software_version": stored.software_version,
         "entries": entries,
+        "left_out": [
+            x.to_dict()
+            for x in left_out(
+                ledger,
+                definition_from_canonical(thaw(stored.definition)),
+                [u.id for u in stored.uses],
+            )
+        ],
         "caution": CAUTION,
     }

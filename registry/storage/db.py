@@ -34,6 +34,20 @@ def resolve_url(db: str | None = None) -> str:
     return f"sqlite:///{path.resolve()}"
 
 
+def who(user: str | None = None) -> str | None:
+    """The user a write is recorded under: `user`, else `PRIORLEDGER_USER`, else the operating
+    system's login name (None when the system cannot say, as in some containers)."""
+    import getpass
+
+    given = (user or os.environ.get("PRIORLEDGER_USER") or "").strip()
+    if given:
+        return given
+    try:
+        return getpass.getuser() or None
+    except (OSError, KeyError):  # no login name and no user database entry
+        return None
+
+
 def _sqlite_pragmas(dbapi_connection, _record) -> None:  # type: ignore[no-untyped-def]
     cursor = dbapi_connection.cursor()
     cursor.execute("PRAGMA foreign_keys = ON")

@@ -44,6 +44,10 @@ class SourceView:
     retracted: bool
     retraction_reason: str | None
     entries: int
+    created_at: str | None = None
+    created_by: str | None = None
+    retracted_at: str | None = None
+    retracted_by: str | None = None
 
     @classmethod
     def of(cls, source: Source, entries: int = 0) -> SourceView:
@@ -58,6 +62,10 @@ class SourceView:
             source.retracted,
             source.retraction_reason,
             entries,
+            _when(source.created_at),
+            source.created_by,
+            _when(source.retracted_at),
+            source.retracted_by,
         )
 
     def to_dict(self) -> dict[str, Any]:
@@ -88,6 +96,8 @@ class EntryView:
     citation: str | None = None
     doi: str | None = None
     retracted: bool = False
+    created_by: str | None = None
+    retraction_reason: str | None = None
 
     @classmethod
     def of(cls, rev: EntryRevision) -> EntryView:
@@ -112,6 +122,8 @@ class EntryView:
             citation=rev.source.citation,
             doi=rev.source.doi,
             retracted=rev.source.retracted,
+            created_by=rev.created_by,
+            retraction_reason=rev.source.retraction_reason,
         )
 
     @property
@@ -237,6 +249,10 @@ class SourceImportReport:
         }
 
 
+def _when(moment: datetime | None) -> str | None:
+    return None if moment is None else moment.isoformat()
+
+
 def _sha256(path: Path) -> str:
     return hashlib.sha256(path.read_bytes()).hexdigest()
 
@@ -269,9 +285,14 @@ def _source_value(name: str, value: str, where: str) -> object:
 
 
 def _revise_source(
-    session: Session, source: Source, changes: Mapping[str, object], reason: str
+    session: Session,
+    source: Source,
+    changes: Mapping[str, object],
+    reason: str,
+    by: str | None,
 ) -> None:
-    """Apply `changes` to a source, keeping its metadata before and after as revisions."""
+    """Apply `changes` to a source, keeping its metadata before and after as revisions; the
+    change is recorded under `by`."""
     last = session.scalar(
         select(func.max(SourceRevision.revision)).where(SourceRevision.source_id == source.id)
     )
@@ -283,6 +304,7 @@ def _revise_source(
                 fields=_metadata(source),
                 reason="as first recorded",
                 created_at=source.created_at,
+                created_by=source.created_by,
             )
         )
         last = 1
@@ -290,7 +312,11 @@ def _revise_source(
         setattr(source, name, value)
     session.add(
         SourceRevision(
-            source_id=source.id, revision=last + 1, fields=_metadata(source), reason=reason
+            source_id=source.id,
+            revision=last + 1,
+            fields=_metadata(source),
+            reason=reason,
+            created_by=by,
         )
     )
     session.flush()
@@ -349,9 +375,15 @@ class Ledger:
     # sources -------------------------------------------------------------------------------
 
     def import_sources(
-        self, path: str | Path, *, update: bool = False, reason: str | None = None
+        self,
+        path: str | Path,
+        *,
+        update: bool = False,
+        reason: str | None = None,
+        user: str | None = None,
     ) -> SourceImportReport:
-        """Add a bibliography's references; fill in fields a stub source lacks.
+        """Add a bibliography's references; fill in fields a stub source lacks. The import and
+        new sources are recorded under `user` (`registry.storage.db.who`).
 
         A reference whose key exists with a different value for a field already set is an
         error unless `update`: then the source's metadata takes the file's values as a new
@@ -361,11 +393,12 @@ class Ledger:
         records = read_bibliography(path)
         added, completed, updated, unchanged = [], [], [], 0
         why = (reason or "").strip() or f"updated from {path.name}"
+        by = db.who(user)
         with self.transaction() as session:
             for record in records:
                 source = session.scalar(select(Source).where(Source.key == record.key))
                 if source is None:
-                    session.add(Source(key=record.key, **record.fields()))
+                    session.add(Source(key=record.key, created_by=by, **record.fields()))
                     added.append(record.key)
                     continue
                 if update:
@@ -375,7 +408,7 @@ class Ledger:
                         if str(getattr(source, k)) != str(v)
                     }
                     if differ:
-                        _revise_source(session, source, differ, why)
+                        _revise_source(session, source, differ, why, by)
                         updated.append(record.key)
                     else:
                         unchanged += 1
@@ -392,6 +425,7 @@ class Ledger:
                     sha256=_sha256(path),
                     added=len(added),
                     skipped=unchanged,
+                    created_by=by,
                 )
             )
         return SourceImportReport(
@@ -418,8 +452,11 @@ class Ledger:
                 )
         return changed
 
-    def edit_source(self, key: str, changes: Mapping[str, str], reason: str) -> SourceView:
-        """Change a source's metadata as a new source revision; an empty value clears a field.
+    def edit_source(
+        self, key: str, changes: Mapping[str, str], reason: str, *, user: str | None = None
+    ) -> SourceView:
+        """Change a source's metadata as a new source revision (recorded under `user`); an
+        empty value clears a field.
 
         The values before the first edit are kept as revision 1, so nothing is lost.
         """
@@ -444,7 +481,7 @@ class Ledger:
             differ = {k: v for k, v in values.items() if getattr(source, k) != v}
             if not differ:
                 raise InputError("the changes leave the source as it is", field="--set", path=where)
-            _revise_source(session, source, differ, reason.strip())
+            _revise_source(session, source, differ, reason.strip(), db.who(user))
             return SourceView.of(source)
 
     def source_history(self, key: str) -> list[dict[str, Any]]:
@@ -459,6 +496,7 @@ class Ledger:
                     "fields": dict(r.fields),
                     "reason": r.reason,
                     "created_at": r.created_at.isoformat(),
+                    "created_by": r.created_by,
                 }
                 for r in session.scalars(
                     select(SourceRevision)
@@ -481,8 +519,9 @@ class Ledger:
                 for s in session.scalars(select(Source).order_by(Source.key))
             ]
 
-    def retract(self, key: str, reason: str) -> SourceView:
-        """Flag a source as retracted; nothing is deleted and priors built on it say so."""
+    def retract(self, key: str, reason: str, *, user: str | None = None) -> SourceView:
+        """Flag a source as retracted; nothing is deleted and priors built on it say so.
+        The retraction is recorded under `user` (`registry.storage.db.who`)."""
         if not reason.strip():
             raise InputError("a retraction needs a reason", field="--reason")
         with self.transaction() as session:
@@ -494,6 +533,7 @@ class Ledger:
             source.retracted = True
             source.retraction_reason = reason.strip()
             source.retracted_at = datetime.now(UTC)
+            source.retracted_by = db.who(user)
             return SourceView.of(source)
 
     # entries -------------------------------------------------------------------------------
@@ -507,8 +547,10 @@ class Ledger:
         reason: str | None = None,
         allow_revert: bool = False,
         create_sources: bool = False,
+        user: str | None = None,
     ) -> ImportReport:
-        """Import an extraction sheet, every row or none: one bad row writes nothing.
+        """Import an extraction sheet, every row or none: one bad row writes nothing. The
+        import, its entries and new sources are recorded under `user` (`db.who`).
 
         A row is matched to an entry by its `row_key` when it has one, else by its identity
         (`sheets.identity`: canonical numbers, source, study, quantity, measure) against every
@@ -527,6 +569,7 @@ class Ledger:
             reason=reason,
             allow_revert=allow_revert,
             create_sources=create_sources,
+            user=user,
         )
 
     def import_elicitation(
@@ -538,6 +581,7 @@ class Ledger:
         dry_run: bool = False,
         decimal_comma: bool = False,
         create_sources: bool = False,
+        user: str | None = None,
     ) -> tuple[ImportReport, Elicitation]:
         """Fit a judgement sheet (`evidence.elicit`) and store one entry per expert and
         quantity, design `expert`, plus one per pool; fits already stored are not added again.
@@ -550,6 +594,7 @@ class Ledger:
             kind="elicitation",
             dry_run=dry_run,
             create_sources=create_sources,
+            user=user,
         )
         return report, elicitation
 
@@ -563,8 +608,10 @@ class Ledger:
         reason: str | None = None,
         allow_revert: bool = False,
         create_sources: bool = False,
+        user: str | None = None,
     ) -> ImportReport:
         why = (reason or "").strip()
+        by = db.who(user)
         with self.transaction(commit=not dry_run) as session:
             plans = self._plan(session, rows, allow_revert)
             new_sources: list[str] = []
@@ -578,12 +625,13 @@ class Ledger:
                     sha256=_sha256(path),
                     added=len(fresh),
                     skipped=len(rows) - len(fresh),
+                    created_by=by,
                 )
                 session.add(record)
             for row, plan in zip(rows, plans, strict=True):
                 if plan.action not in ("add", "revise"):
                     continue
-                source = self._source_for(session, row, str(path), new_sources, create_sources)
+                source = self._source_for(session, row, str(path), new_sources, by, create_sources)
                 if plan.action == "add":
                     entry = Entry(
                         fingerprint=row.fingerprint, row_key=row.row_key, origin=record, row=row.row
@@ -597,6 +645,7 @@ class Ledger:
                         row,
                         source,
                         f"imported from {path.name} row {row.row}",
+                        by,
                     )
                     added.append(entry.id)
                 else:
@@ -608,6 +657,7 @@ class Ledger:
                         row,
                         source,
                         why or f"re-imported from {path.name} row {row.row}",
+                        by,
                     )
         present = sum(p.action == "present" for p in plans)
         return ImportReport(
@@ -680,7 +730,12 @@ class Ledger:
 
     @staticmethod
     def _source_for(
-        session: Session, row: SheetRow, where: str, new: list[str], create: bool = False
+        session: Session,
+        row: SheetRow,
+        where: str,
+        new: list[str],
+        by: str | None,
+        create: bool = False,
     ) -> Source:
         source = session.scalar(select(Source).where(Source.key == row.source))
         info: dict[str, object] = dict(row.source_info)
@@ -695,7 +750,7 @@ class Ledger:
                     row=row.row,
                     path=where,
                 )
-            source = Source(key=row.source, **info)
+            source = Source(key=row.source, created_by=by, **info)
             session.add(source)
             session.flush()
             new.append(row.source)
@@ -705,7 +760,13 @@ class Ledger:
 
     @staticmethod
     def _add_revision(
-        session: Session, entry_id: int, number: int, row: SheetRow, source: Source, reason: str
+        session: Session,
+        entry_id: int,
+        number: int,
+        row: SheetRow,
+        source: Source,
+        reason: str,
+        by: str | None,
     ) -> EntryRevision:
         study = session.scalar(select(Study).where(Study.key == row.study))
         if study is None:
@@ -729,6 +790,7 @@ class Ledger:
             context=row.context,
             extra=row.extra,
             reason=reason,
+            created_by=by,
         )
         session.add(revision)
         session.flush()
@@ -795,8 +857,16 @@ class Ledger:
                 raise NotFoundError(f"entry {entry_id} has no revision {revision}")
             return EntryView.of(rev)
 
-    def revise(self, entry_id: int, changes: Mapping[str, str], reason: str) -> EntryView:
-        """Add a revision with `changes` applied (an empty value clears a cell).
+    def revise(
+        self,
+        entry_id: int,
+        changes: Mapping[str, str],
+        reason: str,
+        *,
+        user: str | None = None,
+    ) -> EntryView:
+        """Add a revision with `changes` applied (an empty value clears a cell), recorded under
+        `user` (`registry.storage.db.who`).
 
         The derived numbers are recomputed and validated as on import.
         """
@@ -836,7 +906,13 @@ class Ledger:
             if source is None:
                 raise InputError(f"no source with key {row.source!r}", field="source", path=where)
             rev = self._add_revision(
-                session, entry_id, current.revision + 1, replace(row, row=0), source, reason.strip()
+                session,
+                entry_id,
+                current.revision + 1,
+                replace(row, row=0),
+                source,
+                reason.strip(),
+                db.who(user),
             )
             session.flush()
             session.refresh(rev)

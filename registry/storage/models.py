@@ -1,5 +1,9 @@
 """SQLAlchemy 2 models of the registry.
 
+Who wrote a record is `created_by` (and `retracted_by`): the user named on the command line,
+else `PRIORLEDGER_USER`, else the login name (`registry.storage.db.who`); null on records
+written before the registry recorded users.
+
 History is append-only: an entry's numbers live in `entry_revisions`, one row per revision,
 never updated; the current state of an entry is its highest revision. A source is never
 deleted; a retraction is recorded on it with its reason and time.
@@ -58,7 +62,9 @@ class Source(Base):
     retracted: Mapped[bool] = mapped_column(Boolean, default=False)
     retraction_reason: Mapped[str | None] = mapped_column(Text)
     retracted_at: Mapped[datetime | None] = mapped_column(DateTime(timezone=True))
+    retracted_by: Mapped[str | None] = mapped_column(String(200))
     created_at: Mapped[datetime] = mapped_column(DateTime(timezone=True), default=utcnow)
+    created_by: Mapped[str | None] = mapped_column(String(200))
 
 
 class SourceRevision(Base):
@@ -73,6 +79,7 @@ class SourceRevision(Base):
     fields: Mapped[dict[str, object]] = mapped_column(JSON)
     reason: Mapped[str] = mapped_column(Text)
     created_at: Mapped[datetime] = mapped_column(DateTime(timezone=True), default=utcnow)
+    created_by: Mapped[str | None] = mapped_column(String(200))
 
 
 class Study(Base):
@@ -97,6 +104,7 @@ class ImportRecord(Base):
     added: Mapped[int] = mapped_column(Integer)
     skipped: Mapped[int] = mapped_column(Integer)
     imported_at: Mapped[datetime] = mapped_column(DateTime(timezone=True), default=utcnow)
+    created_by: Mapped[str | None] = mapped_column(String(200))
 
 
 class Entry(Base):
@@ -150,6 +158,7 @@ class EntryRevision(Base):
     extra: Mapped[dict[str, str]] = mapped_column(JSON, default=dict)
     reason: Mapped[str] = mapped_column(Text)
     created_at: Mapped[datetime] = mapped_column(DateTime(timezone=True), default=utcnow)
+    created_by: Mapped[str | None] = mapped_column(String(200))
 
     entry: Mapped[Entry] = relationship(back_populates="revisions")
     source: Mapped[Source] = relationship()
@@ -180,6 +189,7 @@ class PriorVersion(Base):
     result: Mapped[dict] = mapped_column(JSON)
     software_version: Mapped[str] = mapped_column(String(40))
     created_at: Mapped[datetime] = mapped_column(DateTime(timezone=True), default=utcnow)
+    created_by: Mapped[str | None] = mapped_column(String(200))
 
     uses: Mapped[list[PriorEntry]] = relationship(order_by="PriorEntry.position")
 

@@ -17,6 +17,7 @@ from sqlalchemy.orm import Session
 from registry import __version__
 from registry.caution import CAUTION
 from registry.errors import InputError, NotFoundError
+from registry.storage.db import who
 from registry.storage.ledger import Ledger
 from registry.storage.models import EntryRevision, PriorEntry, PriorVersion
 from registry.values.built import BuildResult
@@ -71,6 +72,7 @@ class StoredPrior:
     software_version: str
     created_at: str
     new: bool = False
+    created_by: str | None = None
 
     def __post_init__(self) -> None:
         object.__setattr__(self, "definition", freeze(dict(self.definition)))
@@ -96,6 +98,7 @@ class StoredPrior:
             "notes": list(result.notes),
             "software_version": self.software_version,
             "created_at": self.created_at,
+            "created_by": self.created_by,
             "caution": CAUTION,
         }
 
@@ -148,6 +151,7 @@ def _stored(session: Session, row: PriorVersion, new: bool = False) -> StoredPri
         row.software_version,
         row.created_at.isoformat(),
         new,
+        row.created_by,
     )
 
 
@@ -172,9 +176,11 @@ def save_version(
     definition: Mapping[str, Any],
     result: BuildResult,
     uses: Sequence[Use],
+    *,
+    user: str | None = None,
 ) -> StoredPrior:
-    """Store a build as the next version of `name`, unless the latest has the same digest
-    (then that version is returned, with `new` False)."""
+    """Store a build as the next version of `name`, recorded under `user` (`db.who`), unless
+    the latest has the same digest (then that version is returned, with `new` False)."""
     with ledger.transaction() as session:
         latest = session.scalars(
             select(PriorVersion)
@@ -190,6 +196,7 @@ def save_version(
             definition=thaw(definition),
             result=result.to_dict(),
             software_version=__version__,
+            created_by=who(user),
         )
         session.add(row)
         session.flush()
