@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from pathlib import Path
 from typing import Annotated, Any
 
@@ -34,11 +35,6 @@ Estimate = Annotated[float | None, _opt("--estimate", "Y", "Estimate on the anal
 Plot = Annotated[Path | None, _opt("--plot", "FILE", "Write a figure (.png, .pdf or .svg).")]
 
 
-def _warn(result: Any) -> None:
-    for warning in result.warnings:
-        err.print(f"warning: {warning}")
-
-
 def _checked(plot: Path | None) -> Path | None:
     """The figure's path, checked before any work is done."""
     if plot is None:
@@ -48,13 +44,28 @@ def _checked(plot: Path | None) -> Path | None:
     return figure_path(plot)
 
 
-def _draw(draw: str, plot: Path | None, result: Any) -> None:
-    """Write `result`'s figure with the named drawing of `registry.report.checks_plots`."""
-    if plot is None:
-        return
-    from registry.report import checks_plots
+def _show(
+    result: Any,
+    render: Callable[[dict[str, Any]], None],
+    *,
+    draw: str,
+    plot: Path | None,
+    as_json: bool,
+) -> None:
+    """Warnings on stderr, the figure (the drawing named `draw` in
+    `registry.report.checks_plots`) if asked, then the JSON document or its text."""
+    for warning in result.warnings:
+        err.print(f"warning: {warning}")
+    if plot is not None:
+        from registry.report import checks_plots
 
-    err.print(f"figure written to {getattr(checks_plots, draw)(plot, result)}")
+        err.print(f"figure written to {getattr(checks_plots, draw)(plot, result)}")
+    doc = result.to_dict()
+    if as_json:
+        print_json(doc)
+        return
+    render(doc)
+    err.print(CAUTION)
 
 
 def _summary_rows(table: Any, doc: dict[str, Any]) -> None:
@@ -81,14 +92,7 @@ def predict(
 
     plot = _checked(plot)
     result = run(ledger(db), label, n=n, exposure=exposure, se=se)
-    _warn(result)
-    _draw("predictive_plot", plot, result)
-    doc = result.to_dict()
-    if as_json:
-        print_json(doc)
-        return
-    render_prediction(doc)
-    err.print(CAUTION)
+    _show(result, render_prediction, draw="predictive_plot", plot=plot, as_json=as_json)
 
 
 def render_prediction(doc: dict[str, Any]) -> None:
@@ -136,14 +140,7 @@ def update(
         se=se,
         conflict_level=conflict_level,
     )
-    _warn(result)
-    _draw("update_plot", plot, result)
-    doc = result.to_dict()
-    if as_json:
-        print_json(doc)
-    else:
-        render_update(doc)
-        err.print(CAUTION)
+    _show(result, render_update, draw="update_plot", plot=plot, as_json=as_json)
     if result.conflict.conflict:
         raise CheckFailed(
             f"prior-data conflict: tail probability {result.conflict.p_value:.4g} is below "
@@ -227,14 +224,7 @@ def sensitivity(
         decide=decide,
         tolerance=tolerance,
     )
-    _warn(result)
-    _draw("sensitivity_plot", plot, result)
-    doc = result.to_dict()
-    if as_json:
-        print_json(doc)
-        return
-    render_sensitivity(doc)
-    err.print(CAUTION)
+    _show(result, render_sensitivity, draw="sensitivity_plot", plot=plot, as_json=as_json)
 
 
 def render_sensitivity(doc: dict[str, Any]) -> None:
