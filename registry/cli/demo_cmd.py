@@ -90,8 +90,10 @@ def render_checks(checks: Any) -> None:
     from registry.demo import CHECKED, NEW_DATA, PLANNED_EXPOSURE, SWEEP_VALUES
 
     events, exposure = NEW_DATA["events"], NEW_DATA["exposure"]
+    out.print()
+    out.rule(f"checks of {CHECKED} — INVENTED data")
     out.print(
-        f"\n5. checks of {CHECKED} before use (nothing is stored). INVENTED data: a planned "
+        f"5. checks of {CHECKED} before use (nothing is stored). INVENTED data: a planned "
         f"control arm followed for {PLANNED_EXPOSURE:g} person-years; then {events:g} falls "
         f"observed in {exposure:g} person-years."
     )
