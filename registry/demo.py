@@ -20,6 +20,15 @@ BIBLIOGRAPHY = "falls-sources.bib"
 DEFINITIONS = ("falls-control-rate.toml", "falls-programme-effect.toml")
 # the definition whose selection (one report per study) the demo pools and plots
 POOLED = "falls-programme-effect.toml"
+# the checks the demo ends with, on its control-rate prior, with INVENTED new data: a planned
+# control arm followed for 150 person-years; then 130 falls observed in those 150 person-years
+CHECKED = "falls-control-rate"
+PLANNED_EXPOSURE = 150.0
+NEW_DATA = {"events": 130.0, "exposure": 150.0}
+# a short power sweep (each value rebuilds the prior); the full default grid is
+# `priorledger sensitivity falls-control-rate --events 130 --exposure 150 --over power`
+SWEEP_VALUES = (0.25, 0.5, 1.0)
+SWEEP_ABOVE = 1.0  # falls per person-year
 
 
 def seed_path(name: str) -> Path:
@@ -40,6 +49,36 @@ def load_seed(ledger: Ledger) -> DemoLoad:
 
 
 @dataclass(frozen=True)
+class DemoChecks:
+    """The checks of the control-rate prior with INVENTED new data: the predictive of the
+    planned control arm, the update with the new data, and a short power sweep."""
+
+    prediction: Any
+    update: Any
+    sweep: Any
+
+
+def run_checks(ledger: Ledger) -> DemoChecks:
+    """predict, update and a power sweep of the demo's control-rate prior (nothing stored)."""
+    from registry.checks.posterior import update_prior
+    from registry.checks.predictive import predict
+    from registry.checks.sensitivity import sensitivity
+
+    return DemoChecks(
+        prediction=predict(ledger, CHECKED, exposure=PLANNED_EXPOSURE),
+        update=update_prior(ledger, CHECKED, **NEW_DATA),
+        sweep=sensitivity(
+            ledger,
+            CHECKED,
+            over="power",
+            values=SWEEP_VALUES,
+            above=SWEEP_ABOVE,
+            **NEW_DATA,
+        ),
+    )
+
+
+@dataclass(frozen=True)
 class DemoRun:
     """What the demo did: the load, the entries, one pooling with its forest plot, the built
     priors and their traces."""
@@ -51,6 +90,7 @@ class DemoRun:
     forest: Path
     built: tuple[StoredPrior, ...]
     traces: tuple[dict[str, Any], ...]
+    checks: DemoChecks
 
 
 def _demo_keys() -> set[str]:
@@ -87,7 +127,8 @@ def _new_file(path: Path) -> Path:
 
 def run_demo(ledger: Ledger, folder: Path) -> DemoRun:
     """Load the demo files, pool the programme's effect as its definition selects it, draw the
-    forest plot into `folder`, build both priors and trace them."""
+    forest plot into `folder`, build both priors and trace them, then check the control-rate
+    prior with invented new data."""
     from registry.priors.definition import load_definition
     from registry.priors.selection import pool_entries
     from registry.priors.store import build_prior, select_entries, trace_prior
@@ -113,4 +154,5 @@ def run_demo(ledger: Ledger, folder: Path) -> DemoRun:
         forest=figure,
         built=built,
         traces=tuple(trace_prior(ledger, s.prior.label) for s in built),
+        checks=run_checks(ledger),
     )

@@ -232,3 +232,178 @@ def test_commands_on_the_bcg_prior_write_nothing(cli, bcg, tmp_path: Path) -> No
     bad = cli("update", "bcg", "--events", "3", "--n", "10", "--db", bcg)
     assert bad.code == 2 and len(bad.stderr.strip().splitlines()) == 1
     assert _digest(bcg) == before
+
+
+# --- the sweep at power 1, warnings, the conflict level, plots ------------------------------
+
+
+@pytest.fixture
+def bcg_prior(cli, bcg, tmp_path: Path) -> Path:  # noqa: F811
+    """The BCG trials' common-effect prior of the mean log risk ratio (BASE: one normal, fast)."""
+    definition = tmp_path / "bcg-base.toml"
+    definition.write_text(BASE)
+    assert cli("build", definition, "--db", bcg).code == 0
+    return bcg
+
+
+NEW = ("--estimate", "-0.5", "--se", "0.2")
+
+
+def _normal_update(m: float, s: float, y: float, se: float) -> tuple[float, float]:
+    """Normal prior N(m, s²), estimate y with standard error se (common practice)."""
+    precision = 1 / s**2 + 1 / se**2
+    return (m / s**2 + y / se**2) / precision, math.sqrt(1 / precision)
+
+
+def test_power_sweep_at_one_is_the_update_of_the_stored_prior(cli, bcg_prior: Path) -> None:
+    """Power 1 rebuilds the stored prior; power a divides each study's information by 1/a, so
+    the common effect's sd becomes sd/sqrt(a) (power prior with a normal likelihood, common
+    practice). Reference: statsmodels' common-effect estimate of the BCG trials."""
+    from statsmodels.stats.meta_analysis import combine_effects
+
+    from tests.test_frequentist import SE, Y
+
+    updated = json.loads(cli("update", "bcg", *NEW, "--json", "--db", bcg_prior).stdout)
+    sweep = ("sensitivity", "bcg", *NEW, "--over", "power", "--values", "0.5,1", "--json")
+    sweep = json.loads(cli(*sweep, "--db", bcg_prior).stdout)
+    at = {row["value"]: row["posterior"] for row in sweep["rows"]}
+    post = updated["posterior"]
+    assert at[1.0]["mean"] == pytest.approx(post["mean"], rel=1e-9)
+    assert at[1.0]["sd"] == pytest.approx(post["sd"], rel=1e-9)
+    for q, v in post["quantiles"].items():
+        assert at[1.0]["quantiles"][q] == pytest.approx(v, rel=1e-9)
+    reference = combine_effects(Y, SE**2)
+    for power in (0.5, 1.0):
+        mean, sd = _normal_update(
+            reference.mean_effect_fe, reference.sd_eff_w_fe / math.sqrt(power), -0.5, 0.2
+        )
+        assert at[power]["mean"] == pytest.approx(mean, abs=1e-6)
+        assert at[power]["sd"] == pytest.approx(sd, abs=1e-6)
+
+
+def test_stale_prior_warns_on_every_check(cli, bcg_prior: Path) -> None:
+    """A source of the stored prior retracted after the build: each command still answers
+    (exit 0, one JSON document) and warns on stderr."""
+    assert cli("sources", "retract", "bcg03", "--reason", "notice", "--db", bcg_prior).code == 0
+    for args in (
+        ("predict", "bcg", "--se", "0.2"),
+        ("update", "bcg", *NEW),
+        ("sensitivity", "bcg", *NEW, "--over", "power", "--values", "1"),
+    ):
+        r = cli(*args, "--json", "--db", bcg_prior)
+        assert r.code == 0, r.stderr
+        assert any(
+            line.startswith("warning: bcg@1 is stale") and "bcg03" in line and "retracted" in line
+            for line in r.stderr.splitlines()
+        ), r.stderr
+        assert json.loads(r.stdout)["warnings"]
+
+
+def test_conflict_level_sets_the_exit_code(cli, bcg_prior: Path) -> None:
+    """Box's two-sided tail probability for a normal prior N(m, s²) and an estimate y with
+    standard error S: 2 min(F(y), 1 - F(y)), F the N(m, s² + S²) cdf (common practice)."""
+    prior = json.loads(cli("prior", "bcg", "--json", "--db", bcg_prior).stdout)
+    (component,) = prior["components"]
+    m, s = component["loc"], component["scale"]
+    y, se = 0.1, 0.15
+    f = stats.norm.cdf(y, m, math.hypot(s, se))
+    p = 2 * min(f, 1 - f)
+    assert 1e-4 < p < 0.5  # so that both levels below are valid
+    data = ("--estimate", str(y), "--se", str(se), "--db", bcg_prior)
+    r = cli("update", "bcg", *data, "--conflict-level", f"{1.5 * p:.6g}", "--json")
+    assert r.code == 1
+    assert json.loads(r.stdout)["conflict"]["p_value"] == pytest.approx(p, rel=1e-6)
+    assert json.loads(r.stdout)["conflict"]["conflict"] is True
+    assert r.stderr.strip().splitlines()[-1].startswith("error: prior-data conflict")
+    r = cli("update", "bcg", *data, "--conflict-level", f"{p / 1.5:.6g}", "--json")
+    assert r.code == 0 and json.loads(r.stdout)["conflict"]["conflict"] is False
+    assert cli("update", "bcg", *data).code == 0
+
+
+def _quad(f, lo: float) -> float:
+    return integrate.quad(f, lo, np.inf, epsabs=1e-14, epsrel=1e-12, limit=200)[0]
+
+
+def test_numerical_predictives_state_an_accuracy_that_bounds_their_error() -> None:
+    """Student-t prior and a normal estimate; log-normal rate prior and Poisson counts. The
+    reference cdf is plain adaptive quadrature (scipy.integrate.quad) of the likelihood's cdf
+    against the prior density, written here."""
+    t = stats.t(4, 0.1, 0.3)
+    prior = Prior.candidate(
+        "identity", (Component("student_t", {"df": 4, "loc": 0.1, "scale": 0.3}),)
+    )
+    d = predictive(prior, planned("mean_difference", se=0.2))
+    assert 0 < d.accuracy < 1e-3 and "accuracy" in d.method
+    assert d.sd == pytest.approx(math.sqrt(0.3**2 * 4 / 2 + 0.2**2), rel=1e-9)
+    for y in (-1.0, -0.3, 0.6, 1.5):
+        ref = _quad(lambda th, y=y: t.pdf(th) * stats.norm.cdf((y - th) / 0.2), -np.inf)
+        assert abs(d.below(y) - ref) <= d.accuracy
+    lognormal = stats.lognorm(0.4, scale=0.8)
+    prior = Prior.candidate("rate", (Component("lognormal", {"s": 0.4, "scale": 0.8}),))
+    d = predictive(prior, planned("rate", exposure=30))
+    assert 0 < d.accuracy < 1e-6
+    for k in (5, 15, 24, 60):
+        ref = _quad(lambda th, k=k: lognormal.pdf(th) * stats.poisson.cdf(k, 30 * th), 0.0)
+        assert abs(d.below(k) - ref) <= max(d.accuracy, 1e-12)
+    # closed forms are exact
+    assert predictive(BETA_MIX, planned("proportion", n=40)).accuracy == 0.0
+
+
+SIGNATURES = {"png": b"\x89PNG\r\n\x1a\n", "pdf": b"%PDF", "svg": b"<?xml"}
+
+
+def _is_figure(path: Path) -> bool:
+    data = path.read_bytes()
+    return len(data) > 1000 and data.startswith(SIGNATURES[path.suffix.lstrip(".")])
+
+
+def test_plots_write_a_file_of_each_format(cli, bcg_prior: Path, tmp_path: Path) -> None:
+    db = ("--db", bcg_prior)
+    sweep = ("sensitivity", "bcg", *NEW, "--over", "power", "--values", "0.5,1")
+    event = ("--probability-below", "-0.4", "--decide", "0.5")
+    runs = [
+        ("predict", "bcg", "--se", "0.2", "--plot", tmp_path / "p.png"),
+        ("update", "bcg", *NEW, "--plot", tmp_path / "u.svg"),
+        (*sweep, *event, "--plot", tmp_path / "s.pdf"),
+        (*sweep, "--plot", tmp_path / "mean.png"),  # mean and interval, no probability
+    ]
+    for args in runs:
+        r = cli(*args, "--json", *db)
+        assert r.code == 0, r.stderr
+        json.loads(r.stdout)  # the figure's note goes to stderr
+        assert _is_figure(args[-1]) and f"figure written to {args[-1]}" in r.stderr
+
+
+def test_count_predictive_plot_draws_bars(tmp_path: Path) -> None:
+    from registry.checks.predictive import Prediction
+    from registry.report.checks_plots import predictive_plot
+
+    study = planned("rate", exposure=30)
+    prediction = Prediction("x@1", study, predictive(GAMMA_MIX, study), (9.0, 75.0))
+    with matplotlib_svg_text():
+        text = predictive_plot(tmp_path / "bars.svg", prediction).read_text()
+    assert f"plausible range: P = {prediction.plausible:.3f}" in text
+    assert "P(events = k)" in text
+
+
+def matplotlib_svg_text():
+    import matplotlib
+
+    return matplotlib.rc_context({"svg.fonttype": "none"})
+
+
+@pytest.mark.parametrize("name", ["missing/p.png", "p.gif", "."])
+@pytest.mark.parametrize(
+    "args",
+    [
+        ("predict", "bcg", "--se", "0.2"),
+        ("update", "bcg", *NEW),
+        ("sensitivity", "bcg", *NEW, "--over", "power", "--values", "1"),
+    ],
+)
+def test_bad_plot_path_exits_2_with_one_line(cli, bcg_prior: Path, tmp_path: Path, args, name):
+    path = tmp_path / name if name != "." else tmp_path
+    r = cli(*args, "--plot", path, "--db", bcg_prior)
+    assert r.code == 2 and r.stdout == ""
+    (line,) = r.stderr.strip().splitlines()
+    assert line.startswith("error: '--plot'")

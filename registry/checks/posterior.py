@@ -222,6 +222,7 @@ class Update:
     conflict: Conflict
     predictive_method: str
     warnings: tuple[str, ...] = ()
+    predictive_accuracy: float = 0.0
 
     def to_dict(self) -> dict[str, Any]:
         from registry.caution import CAUTION
@@ -238,18 +239,24 @@ class Update:
                 "accuracy": p.accuracy,
             },
             "weights": {"prior": list(p.prior_weights), "posterior": list(p.weights)},
-            "conflict": {**self.conflict.to_dict(), "predictive": self.predictive_method},
+            "conflict": {
+                **self.conflict.to_dict(),
+                "predictive": self.predictive_method,
+                "predictive_accuracy": self.predictive_accuracy,
+            },
             "warnings": list(self.warnings),
             "caution": CAUTION,
         }
 
 
-def check_against(prior: Prior, study: Study, level: float | None) -> tuple[Conflict, str]:
-    """Box's tail probability of the study's result and how the predictive was computed."""
+def check_against(prior: Prior, study: Study, level: float | None) -> tuple[Conflict, str, float]:
+    """Box's tail probability of the study's result, how the predictive was computed and its
+    accuracy (it bounds the change of any cumulative probability; the two-sided tail probability
+    moves by at most twice that)."""
     from registry.checks.predictive import predictive, tail_probability
 
     dist = predictive(prior, Study(study.likelihood, study.size))
-    return Conflict(tail_probability(dist, study.result), level), dist.method
+    return Conflict(tail_probability(dist, study.result), level), dist.method, dist.accuracy
 
 
 def update_prior(
@@ -276,5 +283,7 @@ def update_prior(
         loaded.measure, events=events, n=n, exposure=exposure, estimate=estimate, se=se
     )
     prior = loaded.stored.prior
-    conflict, method = check_against(prior, study, conflict_level)
-    return Update(prior.label, study, posterior(prior, study), conflict, method, loaded.warnings)
+    conflict, method, accuracy = check_against(prior, study, conflict_level)
+    return Update(
+        prior.label, study, posterior(prior, study), conflict, method, loaded.warnings, accuracy
+    )

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from collections.abc import Callable
+from pathlib import Path
 from typing import Annotated, Any
 
 import typer
@@ -30,11 +32,40 @@ Exposure = Annotated[float | None, _opt("--exposure", "E", "Exposure (a rate's p
 Se = Annotated[float | None, _opt("--se", "S", "Standard error on the analysis scale.")]
 Events = Annotated[float | None, _opt("--events", "X", "Events observed.")]
 Estimate = Annotated[float | None, _opt("--estimate", "Y", "Estimate on the analysis scale.")]
+Plot = Annotated[Path | None, _opt("--plot", "FILE", "Write a figure (.png, .pdf or .svg).")]
 
 
-def _warn(result: Any) -> None:
+def _checked(plot: Path | None) -> Path | None:
+    """The figure's path, checked before any work is done."""
+    if plot is None:
+        return None
+    from registry.report.checks_plots import figure_path
+
+    return figure_path(plot)
+
+
+def _show(
+    result: Any,
+    render: Callable[[dict[str, Any]], None],
+    *,
+    draw: str,
+    plot: Path | None,
+    as_json: bool,
+) -> None:
+    """Warnings on stderr, the figure (the drawing named `draw` in
+    `registry.report.checks_plots`) if asked, then the JSON document or its text."""
     for warning in result.warnings:
         err.print(f"warning: {warning}")
+    if plot is not None:
+        from registry.report import checks_plots
+
+        err.print(f"figure written to {getattr(checks_plots, draw)(plot, result)}")
+    doc = result.to_dict()
+    if as_json:
+        print_json(doc)
+        return
+    render(doc)
+    err.print(CAUTION)
 
 
 def _summary_rows(table: Any, doc: dict[str, Any]) -> None:
@@ -49,6 +80,7 @@ def predict(
     n: N = None,
     exposure: Exposure = None,
     se: Se = None,
+    plot: Plot = None,
     db: DbOption = None,
     as_json: JsonOption = False,
 ) -> None:
@@ -58,12 +90,13 @@ def predict(
     """
     from registry.checks.predictive import predict as run
 
+    plot = _checked(plot)
     result = run(ledger(db), label, n=n, exposure=exposure, se=se)
-    _warn(result)
-    doc = result.to_dict()
-    if as_json:
-        print_json(doc)
-        return
+    _show(result, render_prediction, draw="predictive_plot", plot=plot, as_json=as_json)
+
+
+def render_prediction(doc: dict[str, Any]) -> None:
+    """A prediction's JSON document as text."""
     out.print(f"{doc['prior']}: predictive of the planned study's {doc['outcome']} {doc['design']}")
     table = make_table("", "value")
     _summary_rows(table, doc)
@@ -71,8 +104,8 @@ def predict(
         lo, hi = doc["plausible_range"]
         table.add_row(f"P({lo:g} <= result <= {hi:g})", number(doc["plausible"]))
     out.print(table)
-    out.print(f"method: {doc['method']}")
-    err.print(CAUTION)
+    accuracy = f" (accuracy {doc['accuracy']:.2g})" if doc["accuracy"] else ""
+    out.print(f"method: {doc['method']}{accuracy}")
 
 
 def update(
@@ -86,6 +119,7 @@ def update(
         float | None,
         _opt("--conflict-level", "A", "Exit 1 when the conflict tail probability is below A."),
     ] = None,
+    plot: Plot = None,
     db: DbOption = None,
     as_json: JsonOption = False,
 ) -> None:
@@ -95,6 +129,7 @@ def update(
     """
     from registry.checks.posterior import update_prior
 
+    plot = _checked(plot)
     result = update_prior(
         ledger(db),
         label,
@@ -105,36 +140,30 @@ def update(
         se=se,
         conflict_level=conflict_level,
     )
-    _warn(result)
-    doc = result.to_dict()
-    if as_json:
-        print_json(doc)
-    else:
-        post = doc["posterior"]
-        out.print(f"{doc['prior']} updated with {doc['data']} ({post['scale']} scale)")
-        table = make_table("posterior", "value")
-        _summary_rows(table, post)
-        out.print(table)
-        weights = make_table("component", "family", "prior weight", "posterior weight")
-        for i, (c, a, b) in enumerate(
-            zip(
-                post["components"],
-                doc["weights"]["prior"],
-                doc["weights"]["posterior"],
-                strict=True,
-            )
-        ):
-            weights.add_row(str(i + 1), c["family"], number(a), number(b))
-        out.print(weights)
-        out.print(f"method: {post['method']}")
-        c = doc["conflict"]
-        out.print(f"conflict: tail probability {c['p_value']:.4g} ({c['method']})")
-        err.print(CAUTION)
+    _show(result, render_update, draw="update_plot", plot=plot, as_json=as_json)
     if result.conflict.conflict:
         raise CheckFailed(
             f"prior-data conflict: tail probability {result.conflict.p_value:.4g} is below "
             f"{conflict_level:g}"
         )
+
+
+def render_update(doc: dict[str, Any]) -> None:
+    """An update's JSON document as text."""
+    post = doc["posterior"]
+    out.print(f"{doc['prior']} updated with {doc['data']} ({post['scale']} scale)")
+    table = make_table("posterior", "value")
+    _summary_rows(table, post)
+    out.print(table)
+    weights = make_table("component", "family", "prior weight", "posterior weight")
+    for i, (c, a, b) in enumerate(
+        zip(post["components"], doc["weights"]["prior"], doc["weights"]["posterior"], strict=True)
+    ):
+        weights.add_row(str(i + 1), c["family"], number(a), number(b))
+    out.print(weights)
+    out.print(f"method: {post['method']}")
+    c = doc["conflict"]
+    out.print(f"conflict: tail probability {c['p_value']:.4g} ({c['method']})")
 
 
 def _values(text: str | None) -> list[float] | None:
@@ -169,6 +198,7 @@ def sensitivity(
     tolerance: Annotated[
         float, _opt("--tolerance", "T", "Tolerance of the tipping point (default 0.001).")
     ] = 1e-3,
+    plot: Plot = None,
     db: DbOption = None,
     as_json: JsonOption = False,
 ) -> None:
@@ -178,6 +208,7 @@ def sensitivity(
     """
     from registry.checks.sensitivity import sensitivity as run
 
+    plot = _checked(plot)
     result = run(
         ledger(db),
         label,
@@ -193,12 +224,14 @@ def sensitivity(
         decide=decide,
         tolerance=tolerance,
     )
-    _warn(result)
-    doc = result.to_dict()
-    if as_json:
-        print_json(doc)
-        return
+    _show(result, render_sensitivity, draw="sensitivity_plot", plot=plot, as_json=as_json)
+
+
+def render_sensitivity(doc: dict[str, Any]) -> None:
+    """A sensitivity sweep's JSON document as text."""
     out.print(f"{doc['prior']} with {doc['data']}, over {doc['over']} (nothing stored)")
+    for side, threshold in (doc["event"] or {}).items():
+        out.print(f"probability: posterior P(theta {side} {threshold:g}), the prior's scale")
     table = make_table(
         doc["over"], f"ESS ({doc['ess_unit']})", "mean", "2.5%", "97.5%", "probability"
     )
@@ -217,4 +250,3 @@ def sensitivity(
         out.print(f"tipping point: {doc['tipping_point']:.4f} (tolerance {doc['tolerance']:g})")
     elif doc["decide"] is not None:
         out.print(f"tipping point: none ({doc['tipping_note']})")
-    err.print(CAUTION)

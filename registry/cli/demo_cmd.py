@@ -4,11 +4,12 @@ from __future__ import annotations
 
 import tempfile
 from pathlib import Path
-from typing import Annotated
+from typing import Annotated, Any
 
 import typer
 
 from registry.caution import CAUTION
+from registry.cli.check_cmds import render_prediction, render_sensitivity, render_update
 from registry.cli.common import err, ledger, out, print_verbatim
 from registry.cli.pool_cmd import render
 from registry.cli.prior_cmds import show, trace_tree
@@ -47,7 +48,9 @@ def demo(
     registry = ledger(db)
     folder = out_dir or (Path(db).parent if "://" not in db else Path.cwd())
     folder.mkdir(parents=True, exist_ok=True)
-    with err.status("running the demo: loading, pooling, building two priors"):
+    with err.status(
+        "running the demo: loading, pooling, building two priors, checking one (about a minute)"
+    ):
         run = run_demo(registry, folder)
     out.rule("priorledger demo — INVENTED scenario")
     out.print(
@@ -78,4 +81,31 @@ def demo(
         for language in ("stan", "pymc"):
             out.rule(f"{stored.prior.label} — {language}")
             print_verbatim(emit(stored.prior, language))
+    render_checks(run.checks)
     err.print(CAUTION)
+
+
+def render_checks(checks: Any) -> None:
+    """Step 5: the demo's checks of its control-rate prior, with their INVENTED data."""
+    from registry.demo import CHECKED, NEW_DATA, PLANNED_EXPOSURE, SWEEP_VALUES
+
+    events, exposure = NEW_DATA["events"], NEW_DATA["exposure"]
+    out.print()
+    out.rule(f"checks of {CHECKED} — INVENTED data")
+    out.print(
+        f"5. checks of {CHECKED} before use (nothing is stored). INVENTED data: a planned "
+        f"control arm followed for {PLANNED_EXPOSURE:g} person-years; then {events:g} falls "
+        f"observed in {exposure:g} person-years."
+    )
+    out.rule(f"priorledger predict {CHECKED} --exposure {PLANNED_EXPOSURE:g}")
+    render_prediction(checks.prediction.to_dict())
+    data = f"--events {events:g} --exposure {exposure:g}"
+    out.rule(f"priorledger update {CHECKED} {data}")
+    render_update(checks.update.to_dict())
+    values = ",".join(f"{v:g}" for v in SWEEP_VALUES)
+    out.rule(f"priorledger sensitivity {CHECKED} {data} --over power --values {values}")
+    render_sensitivity(checks.sweep.to_dict())
+    out.print(
+        f"   a short sweep (each value rebuilds the prior); the full default grid: "
+        f"priorledger sensitivity {CHECKED} {data} --over power"
+    )
