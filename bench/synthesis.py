@@ -65,8 +65,9 @@ def mcmc_normal(y, se, scale, iterations, rng):
     def log_post(m, lt):
         t2 = math.exp(2 * lt)
         v = var + t2
-        return (-0.5 * np.sum(np.log(v) + (y - m) ** 2 / v) + half_normal_log(math.exp(lt), scale)
-                + lt)
+        return (
+            -0.5 * np.sum(np.log(v) + (y - m) ** 2 / v) + half_normal_log(math.exp(lt), scale) + lt
+        )
 
     current = log_post(mu, log_tau)
     step_mu, step_lt = 2.4 / math.sqrt(np.sum(1 / (var + 0.04))), 0.5
@@ -97,8 +98,9 @@ def mcmc_binomial(events, n, scale, iterations, rng):
         tau = math.exp(log_tau)
         prop = theta + step_theta * rng.standard_normal(k)
         ll_prop = loglik(prop)
-        accept = np.log(rng.random(k)) < (ll_prop - ll - 0.5 * ((prop - mu) ** 2
-                                                               - (theta - mu) ** 2) / tau**2)
+        accept = np.log(rng.random(k)) < (
+            ll_prop - ll - 0.5 * ((prop - mu) ** 2 - (theta - mu) ** 2) / tau**2
+        )
         theta = np.where(accept, prop, theta)
         ll = np.where(accept, ll_prop, ll)
         mu = theta.mean() + tau / math.sqrt(k) * rng.standard_normal()
@@ -106,8 +108,9 @@ def mcmc_binomial(events, n, scale, iterations, rng):
         lt_new = log_tau + 0.3 * rng.standard_normal()
 
         def log_tau_post(lt, ss=ss):
-            return -k * lt - 0.5 * ss * math.exp(-2 * lt) + half_normal_log(math.exp(lt),
-                                                                             scale) + lt
+            return (
+                -k * lt - 0.5 * ss * math.exp(-2 * lt) + half_normal_log(math.exp(lt), scale) + lt
+            )
 
         if math.log(rng.random()) < log_tau_post(lt_new) - log_tau_post(log_tau):
             log_tau = lt_new
@@ -116,7 +119,7 @@ def mcmc_binomial(events, n, scale, iterations, rng):
 
 
 def predictive_error(draws: np.ndarray, rng, batches: int = 50) -> tuple[np.ndarray, float]:
-    keep = draws[len(draws) // 5:]
+    keep = draws[len(draws) // 5 :]
     theta_new = keep[:, 0] + keep[:, 1] * rng.standard_normal(len(keep))
     q = np.quantile(theta_new, LEVELS)
     parts = np.array([np.quantile(b, LEVELS) for b in np.array_split(theta_new, batches)])
@@ -132,24 +135,30 @@ def main() -> None:
     iterations = 4000 if args.quick else 20000
     rng = np.random.default_rng(7)
     print("Simulated (invented) data, fixed seed; one core; times in ms.")
-    print(f"Ours: quantile accuracy {QUANTILE_ACCURACY:g} x max(1, sd) (refinement-checked). "
-          "MCMC: batch-means se of the 2.5/50/97.5% predictive quantiles, time extrapolated "
-          "as t (se/target)^2.")
-    header = (f"{'model':9} {'k':>5} {'ours ms':>9} {'mcmc it':>8} {'mcmc ms':>9} "
-              f"{'mcmc se':>9} {'|dq|':>9} {'ms@1e-3':>10} {'ratio@1e-3':>11} "
-              f"{'ms@ours':>10} {'ratio@ours':>11}")
+    print(
+        f"Ours: quantile accuracy {QUANTILE_ACCURACY:g} x max(1, sd) (refinement-checked). "
+        "MCMC: batch-means se of the 2.5/50/97.5% predictive quantiles, time extrapolated "
+        "as t (se/target)^2."
+    )
+    header = (
+        f"{'model':9} {'k':>5} {'ours ms':>9} {'mcmc it':>8} {'mcmc ms':>9} "
+        f"{'mcmc se':>9} {'|dq|':>9} {'ms@1e-3':>10} {'ratio@1e-3':>11} "
+        f"{'ms@ours':>10} {'ratio@ours':>11}"
+    )
     print(header)
     for model in ("normal", "binomial"):
         for k in ks:
             data = simulate(k)
             if model == "normal":
-                ours_t, fit = timed(lambda d=data: fit_normal(d["y"], d["se"], "half-normal:0.5"),
-                                    5)
+                ours_t, fit = timed(
+                    lambda d=data: fit_normal(d["y"], d["se"], "half-normal:0.5"), 5
+                )
                 run = lambda d=data: mcmc_normal(d["y"], d["se"], 0.5, iterations, rng)  # noqa: E731
             else:
                 reps = 1 if k >= 1000 else 3
                 ours_t, fit = timed(
-                    lambda d=data: fit_binomial(d["events"], d["n"], "half-normal:1"), reps)
+                    lambda d=data: fit_binomial(d["events"], d["n"], "half-normal:1"), reps
+                )
                 run = lambda d=data: mcmc_binomial(d["events"], d["n"], 1.0, iterations, rng)  # noqa: E731
             mc_t, draws = timed(run, 1)
             q_mc, se = predictive_error(draws, rng)
@@ -157,10 +166,12 @@ def main() -> None:
             target = QUANTILE_ACCURACY * max(1.0, fit.predictive.sd)
             need_loose = mc_t * (se / 1e-3) ** 2
             need_ours = mc_t * (se / target) ** 2
-            print(f"{model:9} {k:>5} {ours_t * 1e3:>9.1f} {iterations:>8} {mc_t * 1e3:>9.0f} "
-                  f"{se:>9.2e} {np.max(np.abs(q_mc - ours_q)):>9.2e} {need_loose * 1e3:>10.3g} "
-                  f"{need_loose / ours_t:>11.3g} {need_ours * 1e3:>10.3g} "
-                  f"{need_ours / ours_t:>11.3g}")
+            print(
+                f"{model:9} {k:>5} {ours_t * 1e3:>9.1f} {iterations:>8} {mc_t * 1e3:>9.0f} "
+                f"{se:>9.2e} {np.max(np.abs(q_mc - ours_q)):>9.2e} {need_loose * 1e3:>10.3g} "
+                f"{need_loose / ours_t:>11.3g} {need_ours * 1e3:>10.3g} "
+                f"{need_ours / ours_t:>11.3g}"
+            )
 
 
 if __name__ == "__main__":

@@ -129,3 +129,29 @@ SourceOption = Annotated[
 IdOption = Annotated[
     list[int] | None, typer.Option("--id", metavar="ID", help="Only this entry (repeatable).")
 ]
+
+# A listing shows this many rows unless asked for more, so that a registry of a million
+# entries answers at once; the next page is `--offset`.
+PAGE = 1000
+LimitOption = Annotated[
+    int,
+    typer.Option(
+        "--limit", metavar="N", min=0, help=f"Show at most N rows (0: all). Default {PAGE}."
+    ),
+]
+OffsetOption = Annotated[
+    int, typer.Option("--offset", metavar="N", min=0, help="Skip the first N rows.")
+]
+
+
+def page(rows: list[Any], limit: int, offset: int, what: str) -> tuple[list[Any], int | None]:
+    """The rows of one page, fetched as `limit + 1` rows, and the next page's offset (None
+    for the last page); says on stderr where the next page starts."""
+    if not limit or len(rows) <= limit:
+        return rows, None
+    following = offset + limit
+    err.print(
+        f"note: {what} {offset + 1} to {following} shown; more follow "
+        f"(--offset {following}, or --limit 0 for all)"
+    )
+    return rows[:limit], following

@@ -9,9 +9,12 @@ import typer
 from rich.text import Text
 
 from registry.cli.common import (
+    PAGE,
     DbOption,
     JsonOption,
+    LimitOption,
     MeasureOption,
+    OffsetOption,
     QuantityOption,
     SourceOption,
     TagOption,
@@ -20,6 +23,7 @@ from registry.cli.common import (
     make_table,
     number,
     out,
+    page,
     print_json,
 )
 from registry.errors import InputError
@@ -66,16 +70,23 @@ def import_sheet(
 
 
 @sources_app.callback(invoke_without_command=True)
-def sources_list(ctx: typer.Context, db: DbOption = None, as_json: JsonOption = False) -> None:
+def sources_list(
+    ctx: typer.Context,
+    db: DbOption = None,
+    as_json: JsonOption = False,
+    limit: LimitOption = PAGE,
+    offset: OffsetOption = 0,
+) -> None:
     """List sources with their DOI, year, entry count and retraction state.
 
     Example: priorledger sources --json
     """
     if ctx.invoked_subcommand is not None:
         return
-    views = ledger(db).sources()
+    rows = ledger(db).sources(limit=limit + 1 if limit else None, offset=offset)
+    views, following = page(rows, limit, offset, "sources")
     if as_json:
-        print_json({"sources": [v.to_dict() for v in views]})
+        print_json({"sources": [v.to_dict() for v in views], "next_offset": following})
         return
     table = make_table("key", "year", "doi", "entries", "retracted", "citation")
     for v in views:
@@ -139,6 +150,8 @@ def entries_list(
     source: SourceOption = None,
     db: DbOption = None,
     as_json: JsonOption = False,
+    limit: LimitOption = PAGE,
+    offset: OffsetOption = 0,
 ) -> None:
     """List current entries with their derived estimate on the analysis scale.
 
@@ -147,15 +160,18 @@ def entries_list(
     if ctx.invoked_subcommand is not None:
         return
     # a listing shows the whole registry; retracted sources are flagged, not hidden
-    views = ledger(db).entries(
+    rows = ledger(db).entries(
         quantity=quantity,
         measure=measure,
         tags=tag or (),
         sources=source or (),
         include_retracted=True,
+        limit=limit + 1 if limit else None,
+        offset=offset,
     )
+    views, following = page(rows, limit, offset, "entries")
     if as_json:
-        print_json({"entries": [v.to_dict() for v in views]})
+        print_json({"entries": [v.to_dict() for v in views], "next_offset": following})
         return
     out.print(entries_table(views))
 

@@ -14,7 +14,7 @@ from pathlib import Path
 from typing import Any
 
 from sqlalchemy import Engine, func, select
-from sqlalchemy.orm import Session, sessionmaker
+from sqlalchemy.orm import Session, aliased, joinedload, selectinload, sessionmaker
 
 from registry.errors import InputError, NotFoundError
 from registry.evidence.bibliography import read_bibliography
@@ -199,15 +199,27 @@ def _sha256(path: Path) -> str:
 
 
 def _head_revisions():  # type: ignore[no-untyped-def]
-    """The current revision of every entry, as a selectable to join on."""
-    latest = (
-        select(EntryRevision.entry_id, func.max(EntryRevision.revision).label("rev"))
-        .group_by(EntryRevision.entry_id)
-        .subquery()
+    """The current revision of every entry, as a query to filter further.
+
+    A revision is current when no later revision of its entry exists: one probe of the
+    (entry_id, revision) index a row, where a GROUP BY over every revision would read the
+    whole table before the first row came out.
+    """
+    later = aliased(EntryRevision)
+    newer = (
+        select(later.id)
+        .where(later.entry_id == EntryRevision.entry_id, later.revision > EntryRevision.revision)
+        .exists()
     )
-    return select(EntryRevision).join(
-        latest,
-        (EntryRevision.entry_id == latest.c.entry_id) & (EntryRevision.revision == latest.c.rev),
+    # Source, study and tags come with the rows (not one query a row when a view is made).
+    return (
+        select(EntryRevision)
+        .where(~newer)
+        .options(
+            joinedload(EntryRevision.source),
+            joinedload(EntryRevision.study),
+            selectinload(EntryRevision.tags),
+        )
     )
 
 
@@ -289,19 +301,19 @@ class Ledger:
                 )
         return changed
 
-    def sources(self) -> list[SourceView]:
+    def sources(self, *, limit: int | None = None, offset: int = 0) -> list[SourceView]:
+        """Sources by key, `limit` of them (all if None) after the first `offset`; each with
+        the number of entries that have a revision citing it."""
+        entries = (
+            select(func.count(func.distinct(EntryRevision.entry_id)))
+            .where(EntryRevision.source_id == Source.id)
+            .scalar_subquery()
+        )
+        query = select(Source, entries).order_by(Source.key).offset(offset)
+        if limit is not None:
+            query = query.limit(limit)
         with self._sessions() as session:
-            counts = dict(
-                session.execute(
-                    select(Source.id, func.count(func.distinct(EntryRevision.entry_id)))
-                    .join(EntryRevision, EntryRevision.source_id == Source.id)
-                    .group_by(Source.id)
-                ).all()
-            )
-            return [
-                SourceView.of(s, counts.get(s.id, 0))
-                for s in session.scalars(select(Source).order_by(Source.key))
-            ]
+            return [SourceView.of(s, n) for s, n in session.execute(query)]
 
     def retract(self, key: str, reason: str) -> SourceView:
         """Flag a source as retracted; nothing is deleted and priors built on it say so."""
@@ -426,8 +438,11 @@ class Ledger:
         sources: Sequence[str] = (),
         ids: Iterable[int] = (),
         include_retracted: bool = False,
+        limit: int | None = None,
+        offset: int = 0,
     ) -> list[EntryView]:
-        """Current revisions of the entries that match every filter given (tags: all of them).
+        """Current revisions of the entries that match every filter given (tags: all of them),
+        by id: `limit` of them (all if None) after the first `offset`.
 
         Entries from retracted sources are left out unless `include_retracted` is True.
         """
@@ -451,10 +466,11 @@ class Ledger:
         ids = list(ids)
         if ids:
             query = query.where(EntryRevision.entry_id.in_(ids))
+        query = query.order_by(EntryRevision.entry_id).offset(offset)
+        if limit is not None:
+            query = query.limit(limit)
         with self._sessions() as session:
-            return [
-                EntryView.of(r) for r in session.scalars(query.order_by(EntryRevision.entry_id))
-            ]
+            return [EntryView.of(r) for r in session.scalars(query)]
 
     def entry(self, entry_id: int) -> EntryHistory:
         """An entry's current revision and its whole history, oldest first."""
