@@ -518,6 +518,12 @@ def _at_power(
     return _Run(pooled, discounts, fitted, components, model, ess, robust)
 
 
+def inputs_digest(definition: Definition, entries: Sequence[EntryLike]) -> str:
+    """The digest a build of `definition` on `entries` will have, computed before (and
+    without) any pooling: it depends only on the definition, the entries and their ratings."""
+    return _digest(definition, entries, [rate_entry(e, definition) for e in entries])
+
+
 def construct(
     definition: Definition, entries: Sequence[EntryLike], *, rebuild: bool = False
 ) -> Construction:

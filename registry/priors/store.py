@@ -10,11 +10,18 @@ from typing import Any
 
 from registry.caution import CAUTION
 from registry.errors import InputError
-from registry.priors.build import Construction, construct
+from registry.priors.build import Construction, construct, inputs_digest
 from registry.priors.definition import Definition, definition_from_canonical
 from registry.priors.selection import repeated_studies
 from registry.storage.ledger import EntryView, Ledger
-from registry.storage.priors import StoredPrior, Use, list_versions, load_version, save_version
+from registry.storage.priors import (
+    StoredPrior,
+    Use,
+    latest_version,
+    list_versions,
+    load_version,
+    save_version,
+)
 from registry.values.frozen import thaw
 
 __all__ = [
@@ -80,8 +87,12 @@ def select_entries(ledger: Ledger, definition: Definition) -> list[EntryView]:
 
 def build_prior(ledger: Ledger, definition: Definition) -> StoredPrior:
     """Build `definition` on the registry's current entries and store it as a new version,
-    unless the latest version has the same digest (then that version is returned)."""
+    unless the latest version has the same digest (then that version is returned, and
+    nothing is computed: the digest is of the inputs alone)."""
     entries = select_entries(ledger, definition)
+    latest = latest_version(ledger, definition.name)
+    if latest is not None and latest.prior.digest == inputs_digest(definition, entries):
+        return latest
     built = construct(definition, entries)
     uses = [
         Use(
@@ -136,7 +147,7 @@ def verify_prior(ledger: Ledger, label: str) -> Verification:
     """Rebuild from the stored definition and the exact entry revisions used; compare."""
     stored = get_prior(ledger, label)
     definition = definition_from_canonical(thaw(stored.definition))
-    entries = [ledger.revision(u.id, u.revision) for u in stored.uses]
+    entries = ledger.revisions([(u.id, u.revision) for u in stored.uses])
     rebuilt = construct(definition, entries, rebuild=True)
     differences = []
     digest_ok = rebuilt.digest == stored.prior.digest
@@ -159,8 +170,8 @@ def trace_prior(ledger: Ledger, label: str) -> dict[str, Any]:
     numbers -> conversion -> y, se: what a reviewer needs without opening the database."""
     stored = get_prior(ledger, label)
     entries = []
-    for use in stored.uses:
-        view = ledger.revision(use.id, use.revision)
+    views = ledger.revisions([(u.id, u.revision) for u in stored.uses])
+    for use, view in zip(stored.uses, views, strict=True):
         entries.append(
             {
                 **use.to_dict(),

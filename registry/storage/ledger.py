@@ -13,7 +13,7 @@ from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
-from sqlalchemy import Engine, func, select
+from sqlalchemy import Engine, func, select, tuple_
 from sqlalchemy.orm import Session, aliased, joinedload, selectinload, sessionmaker
 
 from registry.errors import InputError, NotFoundError
@@ -198,6 +198,14 @@ def _sha256(path: Path) -> str:
     return hashlib.sha256(path.read_bytes()).hexdigest()
 
 
+# Source, study and tags come with the revisions (not one query a row when a view is made).
+_WITH_PLACE = (
+    joinedload(EntryRevision.source),
+    joinedload(EntryRevision.study),
+    selectinload(EntryRevision.tags),
+)
+
+
 def _head_revisions():  # type: ignore[no-untyped-def]
     """The current revision of every entry, as a query to filter further.
 
@@ -211,16 +219,7 @@ def _head_revisions():  # type: ignore[no-untyped-def]
         .where(later.entry_id == EntryRevision.entry_id, later.revision > EntryRevision.revision)
         .exists()
     )
-    # Source, study and tags come with the rows (not one query a row when a view is made).
-    return (
-        select(EntryRevision)
-        .where(~newer)
-        .options(
-            joinedload(EntryRevision.source),
-            joinedload(EntryRevision.study),
-            selectinload(EntryRevision.tags),
-        )
-    )
+    return select(EntryRevision).where(~newer).options(*_WITH_PLACE)
 
 
 class Ledger:
@@ -483,15 +482,19 @@ class Ledger:
             return EntryHistory(views[-1], views, origin)
 
     def revision(self, entry_id: int, revision: int) -> EntryView:
+        return self.revisions([(entry_id, revision)])[0]
+
+    def revisions(self, wanted: Sequence[tuple[int, int]]) -> list[EntryView]:
+        """The given (entry id, revision) pairs, in the order given, read in one query."""
+        pairs = list(wanted)
+        query = select(EntryRevision).options(*_WITH_PLACE)
+        query = query.where(tuple_(EntryRevision.entry_id, EntryRevision.revision).in_(pairs))
         with self._sessions() as session:
-            rev = session.scalar(
-                select(EntryRevision).where(
-                    EntryRevision.entry_id == entry_id, EntryRevision.revision == revision
-                )
-            )
-            if rev is None:
-                raise NotFoundError(f"entry {entry_id} has no revision {revision}")
-            return EntryView.of(rev)
+            found = {(r.entry_id, r.revision): EntryView.of(r) for r in session.scalars(query)}
+        for entry_id, number in pairs:
+            if (entry_id, number) not in found:
+                raise NotFoundError(f"entry {entry_id} has no revision {number}")
+        return [found[p] for p in pairs]
 
     def revise(self, entry_id: int, changes: Mapping[str, str], reason: str) -> EntryView:
         """Add a revision with `changes` applied (an empty value clears a cell).
