@@ -27,7 +27,7 @@ from dataclasses import dataclass, field
 from functools import cached_property
 from typing import Any
 
-from registry.errors import InputError
+from registry.errors import InputError, NumericalError
 from registry.priors.definition import Definition
 from registry.priors.ratings import DOMAINS, Discount, Rating, discount_for, levels_for
 from registry.priors.selection import EntryLike, check_selection, pool_entries
@@ -452,11 +452,34 @@ class _Run:
 
     pooled: Any
     discounts: tuple[Discount, ...]
+    target: Target
     fitted: Fitted
     components: tuple[Component, ...]
     model: UnitModel
     ess: dict[str, Any]
     robust: dict[str, Any] | None
+
+
+def _pooled_target(
+    definition: Definition,
+    entries: Sequence[EntryLike],
+    ratings: Sequence[tuple[Rating, ...]],
+    global_power: float,
+    retracted_ok: bool,
+) -> tuple[tuple[Discount, ...], Any, Target]:
+    """Steps 2 and 3 at one global power weight: discounts, pooled result, target."""
+    discounts = tuple(_discounts(ratings, definition, global_power))
+    pooled = pool_entries(
+        entries,
+        method=definition["pool.method"],
+        likelihood=definition["pool.likelihood"],
+        tau_prior=definition["pool.tau_prior"],
+        mu_prior=definition["pool.mu_prior"],
+        discounts=discounts,
+        unit_sd=definition["output.unit_sd"],
+        include_retracted=retracted_ok,
+    )
+    return discounts, pooled, _target(pooled, definition, len(entries))
 
 
 def _at_power(
@@ -470,19 +493,9 @@ def _at_power(
     from registry.priors.ess import ess_all
     from registry.priors.update import vague_component, with_vague_component
 
-    discounts = tuple(_discounts(ratings, definition, global_power))
-    model_sd = definition["output.unit_sd"]
-    pooled = pool_entries(
-        entries,
-        method=definition["pool.method"],
-        likelihood=definition["pool.likelihood"],
-        tau_prior=definition["pool.tau_prior"],
-        mu_prior=definition["pool.mu_prior"],
-        discounts=discounts,
-        unit_sd=model_sd,
-        include_retracted=retracted_ok,
+    discounts, pooled, target = _pooled_target(
+        definition, entries, ratings, global_power, retracted_ok
     )
-    target = _target(pooled, definition, len(entries))
     fitted = _fit_family(target, definition, row, row.scale)
     model = unit_model(row, fitted.scale, definition)
     components = fitted.components
@@ -515,7 +528,73 @@ def _at_power(
         unit=model.unit,
         likelihood=model.likelihood,
     )
-    return _Run(pooled, discounts, fitted, components, model, ess, robust)
+    return _Run(pooled, discounts, target, fitted, components, model, ess, robust)
+
+
+# A solved cap is accepted when the built prior's ESS is within this of the cap (relative):
+# the tolerance of `registry.priors.ess.solve_power_for_cap`.
+CAP_TOLERANCE = 0.005
+# Builds tried at solved weights before the cap is declared unsolvable (usually one or two).
+CAP_BUILDS = 5
+
+
+def _solve_cap(
+    definition: Definition,
+    entries: Sequence[EntryLike],
+    ratings: Sequence[tuple[Rating, ...]],
+    row: Measure,
+    retracted_ok: bool,
+    run: _Run,
+    global_power: float,
+) -> tuple[float, _Run]:
+    """The global power weight at which the prior's ESS meets `discount.ess_cap`, and the
+    build at that weight.
+
+    The weight scales the pooled likelihood; the mixture fitted to the target only has to
+    keep the target's ESS (within `ESS_BOUND`). So the root is found on the exact target's
+    ESS (pooling and the target's density grid, no mixture fit) times the ratio of the built
+    prior's ESS to the exact target's at the last weight built, which absorbs the mixture's
+    approximation and the robust component and changes slowly with the weight. The prior is
+    then built once at the answer; where its ESS misses the cap by more than
+    `CAP_TOLERANCE` the ratio is renewed there and the root found again. A target without
+    an exact predictive has a closed-form fit that costs nothing, so every step builds.
+    """
+    from registry.priors.ess import power_for_ess_cap, solve_power_for_cap
+
+    cap = definition["discount.ess_cap"]
+
+    def build_at(a: float) -> _Run:
+        return _at_power(definition, entries, ratings, global_power * a, row, retracted_ok)
+
+    if run.target.exact is None:
+        a = power_for_ess_cap(lambda a: build_at(a).ess, cap, method=ESS_METHOD)
+        return global_power * a, build_at(a)
+
+    exact_at: dict[float, float] = {}
+
+    def exact(a: float) -> float | None:
+        if a not in exact_at:
+            target = _pooled_target(definition, entries, ratings, global_power * a, retracted_ok)
+            exact_at[a] = _EssCheck(target[2], run.fitted.scale, run.model).exact[ESS_METHOD]
+        return exact_at[a]
+
+    a, built = 1.0, run
+    for _ in range(CAP_BUILDS):
+        at_built = exact(a)
+        if at_built is None:
+            break  # the solver below says why
+        ratio = built.ess[ESS_METHOD] / at_built
+        a = solve_power_for_cap(
+            lambda w, r=ratio: None if exact(w) is None else r * exact(w), cap, method=ESS_METHOD
+        )
+        built = build_at(a)
+        if abs(built.ess[ESS_METHOD] / cap - 1.0) <= CAP_TOLERANCE:
+            return global_power * a, built
+    raise NumericalError(
+        f"the global power weight for the ESS cap {cap:g} was not found in {CAP_BUILDS} "
+        f"builds (the last, at {global_power * a:.6g}, has ESS "
+        f"{built.ess[ESS_METHOD]:.6g}); remove discount.ess_cap or change the output family"
+    )
 
 
 def inputs_digest(definition: Definition, entries: Sequence[EntryLike]) -> str:
@@ -532,7 +611,7 @@ def construct(
     `rebuild` is for verifying a stored version from exactly the revisions it used: entries
     whose source has since been retracted are then kept (the version is reported stale).
     """
-    from registry.priors.ess import information_shares, power_for_ess_cap
+    from registry.priors.ess import information_shares
 
     row = check_selection(entries)
     ratings = [rate_entry(e, definition) for e in entries]
@@ -551,14 +630,9 @@ def construct(
             field="discount.ess_cap",
         )
     if cap is not None and headline > cap:
-        global_power *= power_for_ess_cap(
-            lambda a: (
-                _at_power(definition, entries, ratings, global_power * a, row, retracted_ok).ess
-            ),
-            cap,
-            method=ESS_METHOD,
+        global_power, run = _solve_cap(
+            definition, entries, ratings, row, retracted_ok, run, global_power
         )
-        run = _at_power(definition, entries, ratings, global_power, row, retracted_ok)
         notes.append(
             f"global power weight {global_power:.6g} solved so that the effective sample size "
             f"({ESS_METHOD}) meets the cap {cap:g}"
