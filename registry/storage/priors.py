@@ -7,7 +7,7 @@ stores nothing and returns that version; anything changed makes `N+1`.
 from __future__ import annotations
 
 import re
-from collections.abc import Mapping, Sequence
+from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -100,16 +100,18 @@ class StoredPrior:
         }
 
 
+def latest_revisions_query(entry_ids: Iterable[int]):  # type: ignore[no-untyped-def]
+    """(entry id, latest revision) of each entry, read from the (entry, revision) index."""
+    return (
+        select(EntryRevision.entry_id, func.max(EntryRevision.revision))
+        .where(EntryRevision.entry_id.in_(set(entry_ids)))
+        .group_by(EntryRevision.entry_id)
+    )
+
+
 def _staleness(session: Session, row: PriorVersion) -> tuple[str, ...]:
     used = [use.revision for use in row.uses]
-    # The latest revision of every entry used, in one query on the (entry, revision) index.
-    latest = dict(
-        session.execute(
-            select(EntryRevision.entry_id, func.max(EntryRevision.revision))
-            .where(EntryRevision.entry_id.in_({rev.entry_id for rev in used}))
-            .group_by(EntryRevision.entry_id)
-        ).all()
-    )
+    latest = dict(session.execute(latest_revisions_query(rev.entry_id for rev in used)).all())
     reasons = []
     for rev in used:
         if latest[rev.entry_id] > rev.revision:
