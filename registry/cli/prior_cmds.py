@@ -6,8 +6,6 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Annotated
 
 import typer
-from rich.text import Text
-from rich.tree import Tree
 
 from registry.caution import CAUTION
 from registry.cli.common import (
@@ -25,6 +23,8 @@ from registry.errors import CheckFailed
 from registry.values.ess_methods import ESS_METHODS
 
 if TYPE_CHECKING:
+    from rich.tree import Tree
+
     from registry.priors.store import StoredPrior
 
 Label = Annotated[
@@ -46,6 +46,8 @@ def _components(stored: StoredPrior) -> str:
 
 
 def show(stored: StoredPrior) -> None:
+    from rich.text import Text
+
     p = stored.prior
     out.print(
         Text.assemble(
@@ -189,6 +191,9 @@ def trace(label: Label, db: DbOption = None, as_json: JsonOption = False) -> Non
 
 def trace_tree(doc: dict, *, short: bool = False) -> Tree:
     """The trace as a tree; `short` keeps one line an entry."""
+    from rich.text import Text
+    from rich.tree import Tree
+
     tree = Tree(
         Text.assemble((doc["prior"], "bold"), f" ({doc['scale']}) digest {doc['digest'][:16]}")
     )

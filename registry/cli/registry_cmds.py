@@ -6,7 +6,6 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Annotated
 
 import typer
-from rich.text import Text
 
 from registry.cli.common import (
     PAGE,
@@ -204,6 +203,8 @@ def entries_show(
 
     Example: priorledger entries show 3
     """
+    from rich.text import Text
+
     history = ledger(db).entry(entry_id)
     if as_json:
         print_json(history.to_dict())
