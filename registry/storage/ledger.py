@@ -483,32 +483,19 @@ class Ledger:
         return revision
 
     def entries(
-        self,
-        *,
-        quantity: str | None = None,
-        measure: str | None = None,
-        tags: Sequence[str] = (),
-        sources: Sequence[str] = (),
-        ids: Iterable[int] = (),
-        include_retracted: bool = False,
-        limit: int | None = None,
-        offset: int = 0,
+        self, *, limit: int | None = None, offset: int = 0, **filters: Any
     ) -> list[EntryView]:
-        """Current revisions of the entries that match every filter given (tags: all of them),
-        by id: `limit` of them (all if None) after the first `offset`.
+        """Current revisions of the entries that match every filter given (`entries_query`'s
+        keywords: quantity, measure, tags (all of them), sources, ids, include_retracted), by
+        id: `limit` of them (all if None) after the first `offset`.
 
         Entries from retracted sources are left out unless `include_retracted` is True.
         """
         with self._sessions() as session:
             query = entries_query(
-                quantity=quantity,
-                measure=measure,
-                tags=tags,
-                sources=sources,
-                ids=ids,
-                include_retracted=include_retracted,
+                **filters,
                 tags_in_id_order=limit is not None
-                and self._tags_are_common(session, tags, offset + limit),
+                and self._tags_are_common(session, filters.get("tags", ()), offset + limit),
             )
             query = query.offset(offset)
             if limit is not None:
