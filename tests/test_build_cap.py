@@ -11,7 +11,7 @@ import pytest
 import registry.priors.build as build
 from registry.priors.definition import parse_definition
 from registry.priors.ess import power_for_ess_cap
-from registry.priors.store import build_prior, select_entries
+from registry.priors.store import build_prior, select_entries, verify_prior
 from registry.storage.ledger import Ledger
 from tests.test_priors import BASE, bcg  # noqa: F401  (the fixture)
 
@@ -65,3 +65,17 @@ def test_an_unchanged_rebuild_pools_nothing(
     # a changed input is built again (and pools)
     changed = parse_definition(CAPPED.replace("ess_cap = 4", "ess_cap = 3"))
     assert build_prior(ledger, changed).new and calls
+
+
+def test_verifying_a_capped_prior_builds_once(
+    bcg: Path,  # noqa: F811
+    monkeypatch: pytest.MonkeyPatch,
+) -> None:
+    ledger = Ledger.open(str(bcg))
+    stored = build_prior(ledger, parse_definition(CAPPED))
+    assert stored.result.global_power < 1
+    builds = []
+    at_power = build._at_power
+    monkeypatch.setattr(build, "_at_power", lambda *a, **k: builds.append(1) or at_power(*a, **k))
+    result = verify_prior(ledger, stored.prior.label)
+    assert result.ok and len(builds) == 1

@@ -588,7 +588,7 @@ def _solve_cap(
             lambda w, r=ratio: None if exact(w) is None else r * exact(w), cap, method=ESS_METHOD
         )
         built = build_at(a)
-        if abs(built.ess[ESS_METHOD] / cap - 1.0) <= CAP_TOLERANCE:
+        if _meets_cap(built, cap):
             return global_power * a, built
     raise NumericalError(
         f"the global power weight for the ESS cap {cap:g} was not found in {CAP_BUILDS} "
@@ -603,13 +603,26 @@ def inputs_digest(definition: Definition, entries: Sequence[EntryLike]) -> str:
     return _digest(definition, entries, [rate_entry(e, definition) for e in entries])
 
 
+def _meets_cap(run: _Run, cap: float) -> bool:
+    value = run.ess[ESS_METHOD]
+    return value is not None and abs(value / cap - 1.0) <= CAP_TOLERANCE
+
+
 def construct(
-    definition: Definition, entries: Sequence[EntryLike], *, rebuild: bool = False
+    definition: Definition,
+    entries: Sequence[EntryLike],
+    *,
+    rebuild: bool = False,
+    solved_power: float | None = None,
 ) -> Construction:
     """Build the prior's components and lineage from entries (in order) and a definition.
 
     `rebuild` is for verifying a stored version from exactly the revisions it used: entries
     whose source has since been retracted are then kept (the version is reported stale).
+    `solved_power` is the global power weight a stored version solved its ESS cap with: it
+    is built first and kept if its ESS meets the cap (ESS grows with the weight, so a weight
+    below the definition's that meets the cap is the cap's solution), so that verifying
+    costs one build; otherwise the cap is solved again.
     """
     from registry.priors.ess import information_shares
 
@@ -618,21 +631,29 @@ def construct(
     digest = _digest(definition, entries, ratings)
     global_power = definition["discount.global_power"]
     retracted_ok = rebuild or definition["select.include_retracted"]
-    run = _at_power(definition, entries, ratings, global_power, row, retracted_ok)
     cap = definition["discount.ess_cap"]
     notes = []
-    headline = run.ess[ESS_METHOD]
-    if cap is not None and headline is None:
-        raise InputError(
-            f"the ESS cap is met on the {ESS_METHOD} effective sample size, which does not "
-            f"exist for this prior ({run.ess['notes'].get(ESS_METHOD, 'no value')}); remove "
-            "discount.ess_cap, or change the output family or the robust component",
-            field="discount.ess_cap",
-        )
-    if cap is not None and headline > cap:
-        global_power, run = _solve_cap(
-            definition, entries, ratings, row, retracted_ok, run, global_power
-        )
+    run = None
+    if cap is not None and solved_power is not None and solved_power < global_power:
+        run = _at_power(definition, entries, ratings, solved_power, row, retracted_ok)
+        run = run if _meets_cap(run, cap) else None
+    if run is not None:
+        global_power = solved_power
+    else:
+        run = _at_power(definition, entries, ratings, global_power, row, retracted_ok)
+        headline = run.ess[ESS_METHOD]
+        if cap is not None and headline is None:
+            raise InputError(
+                f"the ESS cap is met on the {ESS_METHOD} effective sample size, which does not "
+                f"exist for this prior ({run.ess['notes'].get(ESS_METHOD, 'no value')}); "
+                "remove discount.ess_cap, or change the output family or the robust component",
+                field="discount.ess_cap",
+            )
+        if cap is not None and headline > cap:
+            global_power, run = _solve_cap(
+                definition, entries, ratings, row, retracted_ok, run, global_power
+            )
+    if global_power != definition["discount.global_power"]:
         notes.append(
             f"global power weight {global_power:.6g} solved so that the effective sample size "
             f"({ESS_METHOD}) meets the cap {cap:g}"

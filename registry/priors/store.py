@@ -148,7 +148,8 @@ def verify_prior(ledger: Ledger, label: str) -> Verification:
     stored = get_prior(ledger, label)
     definition = definition_from_canonical(thaw(stored.definition))
     entries = ledger.revisions([(u.id, u.revision) for u in stored.uses])
-    rebuilt = construct(definition, entries, rebuild=True)
+    # the stored weight is tried first: a verified cap costs one build, not a solve
+    rebuilt = construct(definition, entries, rebuild=True, solved_power=stored.result.global_power)
     differences = []
     digest_ok = rebuilt.digest == stored.prior.digest
     if not digest_ok:
