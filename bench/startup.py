@@ -24,13 +24,16 @@ ALEMBIC_PROBE = (
 )
 
 
-def median_ms(command: list[str], runs: int) -> float:
-    times = []
+def medians_ms(commands: dict[str, list[str]], runs: int) -> dict[str, float]:
+    """Median wall time of each command; the commands take turns, round after round, so that
+    a machine shared with other work slows each of them alike."""
+    times: dict[str, list[float]] = {label: [] for label in commands}
     for _ in range(runs):
-        start = time.perf_counter()
-        subprocess.run(command, capture_output=True, check=True)
-        times.append((time.perf_counter() - start) * 1000)
-    return statistics.median(times)
+        for label, command in commands.items():
+            start = time.perf_counter()
+            subprocess.run(command, capture_output=True, check=True)
+            times[label].append((time.perf_counter() - start) * 1000)
+    return {label: statistics.median(values) for label, values in times.items()}
 
 
 def main() -> None:
@@ -53,7 +56,7 @@ def main() -> None:
         "import sqlalchemy.orm": [python, "-c", "import sqlalchemy.orm"],
         "import alembic (migrations)": [python, "-c", "import alembic.command"],
     }
-    times = {label: median_ms(argv, runs) for label, argv in rows.items()}
+    times = medians_ms(rows, runs)
     print(f"{'command':<34}{'median ms':>10}")
     for label, ms in times.items():
         print(f"{label:<34}{ms:>10.1f}")
