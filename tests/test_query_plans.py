@@ -8,10 +8,14 @@ not depend on the rows present, so the plans are those of a registry of any size
 
 from __future__ import annotations
 
+import json
+from pathlib import Path
+
 import pytest
 
 from registry.storage.ledger import Ledger, entries_query, sources_query
 from registry.storage.priors import latest_revisions_query
+from tests.conftest import write_sheet
 
 
 def plan(ledger: Ledger, query) -> list[str]:  # type: ignore[no-untyped-def]
@@ -64,3 +68,19 @@ def test_sources_are_counted_on_the_source_index(ledger: Ledger) -> None:
 def test_staleness_reads_the_latest_revisions_from_the_index(ledger: Ledger) -> None:
     steps = plan(ledger, latest_revisions_query([1, 2, 3]))
     assert any("COVERING INDEX sqlite_autoindex_entry_revisions_1" in s for s in steps), steps
+
+
+def test_listings_come_a_page_at_a_time(cli, tmp_path: Path) -> None:  # type: ignore[no-untyped-def]
+    header = ["source", "quantity", "measure", "events", "exposure", "tags", "location"]
+    rows = [[f"s{i}", "q", "rate", 10 + i, 20.0, "t", ""] for i in range(3)]
+    sheet = write_sheet(tmp_path / "s.csv", header, *rows)
+    db = tmp_path / "r.db"
+    assert cli("import", sheet, "--db", db).code == 0
+    first = cli("entries", "--tag", "t", "--limit", "2", "--json", "--db", db)
+    doc = json.loads(first.stdout)
+    assert [e["source"] for e in doc["entries"]] == ["s0", "s1"] and doc["next_offset"] == 2
+    assert "--offset 2" in first.stderr
+    last = json.loads(cli("entries", "--offset", "2", "--json", "--db", db).stdout)
+    assert [e["source"] for e in last["entries"]] == ["s2"] and last["next_offset"] is None
+    every = json.loads(cli("sources", "--limit", "0", "--json", "--db", db).stdout)
+    assert [s["entries"] for s in every["sources"]] == [1, 1, 1] and every["next_offset"] is None
