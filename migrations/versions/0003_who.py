@@ -25,15 +25,15 @@ COLUMNS = {
 }
 
 
+# Plain ALTER TABLE (no batch mode): batch mode copies a table, which SQLite's foreign keys
+# refuse for tables that others refer to (sources, entry_revisions, prior_versions).
 def upgrade() -> None:
     for table, columns in COLUMNS.items():
-        with op.batch_alter_table(table, schema=None) as batch_op:
-            for column in columns:
-                batch_op.add_column(sa.Column(column, sa.String(length=200), nullable=True))
+        for column in columns:
+            op.add_column(table, sa.Column(column, sa.String(length=200), nullable=True))
 
 
 def downgrade() -> None:
     for table, columns in COLUMNS.items():
-        with op.batch_alter_table(table, schema=None) as batch_op:
-            for column in columns:
-                batch_op.drop_column(column)
+        for column in columns:
+            op.drop_column(table, column)

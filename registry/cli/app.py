@@ -9,9 +9,7 @@ from __future__ import annotations
 
 import os
 import sys
-import tempfile
 import time
-import traceback
 from pathlib import Path
 from typing import Annotated
 
@@ -39,6 +37,9 @@ app = typer.Typer(
     no_args_is_help=True,
     pretty_exceptions_enable=False,
     add_completion=False,
+    # Click's plain help: Typer's Rich help loads Markdown and Pygments (most of the cost of
+    # `--help`, issue 13 goal 3) for formatting the help text does not use.
+    rich_markup_mode=None,
 )
 
 
@@ -122,6 +123,9 @@ def _write_crash_report(error: Exception) -> str:
 
     The file is readable by its owner only: a traceback can show paths and database URLs.
     """
+    import tempfile
+    import traceback
+
     stamp = time.strftime("%Y%m%dT%H%M%S")
     path = Path(tempfile.gettempdir()) / f"priorledger-crash-{stamp}-{os.getpid()}.txt"
     report = f"priorledger {__version__}, Python {sys.version.split()[0]}\n\n" + "".join(

@@ -9,16 +9,13 @@ from __future__ import annotations
 
 import json
 import sys
-from typing import Annotated, Any, Literal
+from typing import TYPE_CHECKING, Annotated, Any
 
 import typer
-from rich.cells import cell_len
-from rich.console import Console, ConsoleDimensions, RenderableType
-from rich.rule import Rule
-from rich.status import Status
-from rich.style import Style
-from rich.table import Column, Table
-from rich.text import Text
+
+# Rich is imported where something is drawn: `--help` starts without it.
+if TYPE_CHECKING:
+    from rich.table import Table
 
 DbOption = Annotated[
     str | None,
@@ -44,54 +41,26 @@ JsonOption = Annotated[
     bool, typer.Option("--json", help="Print exactly one JSON document on stdout.")
 ]
 
-# Width of a console whose output is piped or redirected: wider than any real line, so that
-# nothing is wrapped or cut, yet finite in case some renderable pads to the full width.
-UNBOUNDED = 1_000_000
-# A rule (a horizontal line) has no natural width, so off a terminal it gets this one.
-RULE_WIDTH = 80
 
-
-class PlainConsole(Console):
-    """A Rich console for priorledger's output: text is never read as markup, and output that
-    is not a terminal is never wrapped or truncated.
-
-    Markup, emoji codes and highlighting are off, so a string is printed as it is, wherever
-    it comes from (citations, notes, reasons, keys, tags); style goes in explicitly with
-    `rich.text.Text` (for example `Text.assemble(("entry 3", "bold"), " revision 2")`).
-    When the file is not a terminal the console is unboundedly wide, so table cells are shown
-    in full and long lines stay whole; on a terminal the output is Rich's usual layout.
-    """
+class _OnFirstUse:
+    """`out` or `err`: a `registry.cli.console.PlainConsole`, made on first use, so that
+    `--help`, `--version` and commands that print through neither start without Rich's
+    console (a fifth of the start-up beyond Typer's own)."""
 
     def __init__(self, *, stderr: bool = False) -> None:
-        super().__init__(stderr=stderr, markup=False, emoji=False, highlight=False)
+        self._stderr = stderr
+        self._console: Any = None
 
-    @property
-    def size(self) -> ConsoleDimensions:
-        size = super().size
-        return size if self.is_terminal else ConsoleDimensions(UNBOUNDED, size.height)
+    def __getattr__(self, name: str) -> Any:
+        if self._console is None:
+            from registry.cli.console import PlainConsole
 
-    def rule(
-        self,
-        title: str | Text = "",
-        *,
-        characters: str = "─",
-        style: str | Style = "rule.line",
-        align: Literal["left", "center", "right"] = "center",
-    ) -> None:
-        """A horizontal line with a title; off a terminal, as wide as a page, title in full."""
-        line = Rule(title, characters=characters, style=style, align=align)
-        if self.is_terminal:
-            self.print(line)
-        else:
-            self.print(line, width=max(RULE_WIDTH, cell_len(str(title)) + 6))
-
-    def status(self, status: RenderableType, **kwargs: Any) -> Status:
-        """A spinner; its text is plain (Rich would read a string's brackets as markup)."""
-        return super().status(Text(status) if isinstance(status, str) else status, **kwargs)
+            self._console = PlainConsole(stderr=self._stderr)
+        return getattr(self._console, name)
 
 
-out = PlainConsole()
-err = PlainConsole(stderr=True)
+out = _OnFirstUse()
+err = _OnFirstUse(stderr=True)
 
 
 def print_json(doc: Any) -> None:
@@ -101,6 +70,8 @@ def print_json(doc: Any) -> None:
 def make_table(*headers: str) -> Table:
     """A table whose long cells fold onto more lines on a terminal instead of being cut
     with an ellipsis, so that no key, DOI or name is ever shown in part."""
+    from rich.table import Column, Table
+
     return Table(*(Column(header, overflow="fold") for header in headers))
 
 
@@ -151,3 +122,27 @@ SourceOption = Annotated[
 IdOption = Annotated[
     list[int] | None, typer.Option("--id", metavar="ID", help="Only this entry (repeatable).")
 ]
+
+# A listing shows this many rows unless asked for more, so that a registry of a million
+# entries answers at once; the next page is `--offset`.
+PAGE = 1000
+LimitOption = Annotated[
+    int,
+    typer.Option("--limit", metavar="N", min=0, help="Show at most N rows (0: all)."),
+]
+OffsetOption = Annotated[
+    int, typer.Option("--offset", metavar="N", min=0, help="Skip the first N rows.")
+]
+
+
+def page(rows: list[Any], limit: int, offset: int, what: str) -> tuple[list[Any], int | None]:
+    """The rows of one page, fetched as `limit + 1` rows, and the next page's offset (None
+    for the last page); says on stderr where the next page starts."""
+    if not limit or len(rows) <= limit:
+        return rows, None
+    following = offset + limit
+    err.print(
+        f"note: {what} {offset + 1} to {following} shown; more follow "
+        f"(--offset {following}, or --limit 0 for all)"
+    )
+    return rows[:limit], following

@@ -2,7 +2,6 @@
 
 from __future__ import annotations
 
-import tempfile
 from pathlib import Path
 from typing import Annotated, Any
 
@@ -42,6 +41,8 @@ def demo(
     from registry.emit import emit
 
     if db is None:
+        import tempfile
+
         db = str(Path(tempfile.mkdtemp(prefix="priorledger-demo-")) / "demo.db")
     elif "://" not in db:
         Path(db).parent.mkdir(parents=True, exist_ok=True)

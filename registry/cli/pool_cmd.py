@@ -6,7 +6,6 @@ from pathlib import Path
 from typing import Annotated, Any
 
 import typer
-from rich.text import Text
 
 from registry.cli.common import (
     DbOption,
@@ -137,6 +136,8 @@ def pool(
 
 def render(result: Any, scale: str) -> None:
     """A pooled result as text, on the analysis scale and, where it differs, the natural one."""
+    from rich.text import Text
+
     from registry.values.scales import to_natural
 
     natural = "" if scale == "identity" else f" (natural {to_natural(scale, result.mu):.4g})"

@@ -6,8 +6,6 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Annotated
 
 import typer
-from rich.text import Text
-from rich.tree import Tree
 
 from registry.caution import CAUTION
 from registry.cli.common import (
@@ -26,6 +24,8 @@ from registry.errors import CheckFailed
 from registry.values.ess_methods import ESS_METHODS
 
 if TYPE_CHECKING:
+    from rich.tree import Tree
+
     from registry.priors.store import StoredPrior
 
 Label = Annotated[
@@ -47,6 +47,8 @@ def _components(stored: StoredPrior) -> str:
 
 
 def show(stored: StoredPrior) -> None:
+    from rich.text import Text
+
     p = stored.prior
     out.print(
         Text.assemble(
@@ -200,6 +202,9 @@ def trace(label: Label, db: DbOption = None, as_json: JsonOption = False) -> Non
 
 def trace_tree(doc: dict, *, short: bool = False) -> Tree:
     """The trace as a tree; `short` keeps one line an entry."""
+    from rich.text import Text
+    from rich.tree import Tree
+
     tree = Tree(
         Text.assemble(
             (doc["prior"], "bold"),

@@ -6,14 +6,16 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Annotated
 
 import typer
-from rich.text import Text
 
 from registry.cli.common import (
+    PAGE,
     CreateSourcesOption,
     DbOption,
     DecimalCommaOption,
     JsonOption,
+    LimitOption,
     MeasureOption,
+    OffsetOption,
     QuantityOption,
     SetOption,
     SourceOption,
@@ -24,6 +26,7 @@ from registry.cli.common import (
     make_table,
     number,
     out,
+    page,
     print_json,
 )
 from registry.errors import InputError
@@ -97,16 +100,23 @@ def import_sheet(
 
 
 @sources_app.callback(invoke_without_command=True)
-def sources_list(ctx: typer.Context, db: DbOption = None, as_json: JsonOption = False) -> None:
+def sources_list(
+    ctx: typer.Context,
+    db: DbOption = None,
+    as_json: JsonOption = False,
+    limit: LimitOption = PAGE,
+    offset: OffsetOption = 0,
+) -> None:
     """List sources with their DOI, year, entry count and retraction state.
 
     Example: priorledger sources --json
     """
     if ctx.invoked_subcommand is not None:
         return
-    views = ledger(db).sources()
+    rows = ledger(db).sources(limit=limit + 1 if limit else None, offset=offset)
+    views, following = page(rows, limit, offset, "sources")
     if as_json:
-        print_json({"sources": [v.to_dict() for v in views]})
+        print_json({"sources": [v.to_dict() for v in views], "next_offset": following})
         return
     table = make_table("key", "year", "doi", "entries", "retracted", "added", "citation")
     for v in views:
@@ -233,6 +243,8 @@ def entries_list(
     source: SourceOption = None,
     db: DbOption = None,
     as_json: JsonOption = False,
+    limit: LimitOption = PAGE,
+    offset: OffsetOption = 0,
 ) -> None:
     """List current entries with their derived estimate on the analysis scale.
 
@@ -241,15 +253,18 @@ def entries_list(
     if ctx.invoked_subcommand is not None:
         return
     # a listing shows the whole registry; retracted sources are flagged, not hidden
-    views = ledger(db).entries(
+    rows = ledger(db).entries(
         quantity=quantity,
         measure=measure,
         tags=tag or (),
         sources=source or (),
         include_retracted=True,
+        limit=limit + 1 if limit else None,
+        offset=offset,
     )
+    views, following = page(rows, limit, offset, "entries")
     if as_json:
-        print_json({"entries": [v.to_dict() for v in views]})
+        print_json({"entries": [v.to_dict() for v in views], "next_offset": following})
         return
     out.print(entries_table(views))
 
@@ -282,6 +297,8 @@ def entries_show(
 
     Example: priorledger entries show 3
     """
+    from rich.text import Text
+
     history = ledger(db).entry(entry_id)
     if as_json:
         print_json(history.to_dict())

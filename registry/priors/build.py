@@ -27,7 +27,7 @@ from dataclasses import dataclass, field
 from functools import cached_property
 from typing import Any
 
-from registry.errors import InputError
+from registry.errors import InputError, NumericalError
 from registry.priors.definition import Definition
 from registry.priors.ratings import DOMAINS, Discount, Rating, discount_for, levels_for
 from registry.priors.selection import EntryLike, check_selection, pool_entries
@@ -178,7 +178,7 @@ class Target:
 def _target(pooled: Any, definition: Definition, k: int) -> Target:
     import numpy as np
 
-    if pooled.predictive is not None and definition["target"] == "predictive":
+    if getattr(pooled, "predictive", None) is not None and definition["target"] == "predictive":
         p = pooled.predictive
         return Target(p.mean, p.sd, np.asarray(p.x), np.asarray(p.density), exact=p)
     if definition["target"] == "mean":
@@ -453,13 +453,35 @@ class _Run:
     """Steps 2-6 at one global power weight."""
 
     pooled: Any
-    target: Target
     discounts: tuple[Discount, ...]
+    target: Target
     fitted: Fitted
     components: tuple[Component, ...]
     model: UnitModel
     ess: dict[str, Any]
     robust: dict[str, Any] | None
+
+
+def _pooled_target(
+    definition: Definition,
+    entries: Sequence[EntryLike],
+    ratings: Sequence[tuple[Rating, ...]],
+    global_power: float,
+    retracted_ok: bool,
+) -> tuple[tuple[Discount, ...], Any, Target]:
+    """Steps 2 and 3 at one global power weight: discounts, pooled result, target."""
+    discounts = tuple(_discounts(ratings, definition, global_power))
+    pooled = pool_entries(
+        entries,
+        method=definition["pool.method"],
+        likelihood=definition["pool.likelihood"],
+        tau_prior=definition["pool.tau_prior"],
+        mu_prior=definition["pool.mu_prior"],
+        discounts=discounts,
+        unit_sd=definition["output.unit_sd"],
+        include_retracted=retracted_ok,
+    )
+    return discounts, pooled, _target(pooled, definition, len(entries))
 
 
 def _at_power(
@@ -473,19 +495,9 @@ def _at_power(
     from registry.priors.ess import ess_all
     from registry.priors.update import vague_component, with_vague_component
 
-    discounts = tuple(_discounts(ratings, definition, global_power))
-    model_sd = definition["output.unit_sd"]
-    pooled = pool_entries(
-        entries,
-        method=definition["pool.method"],
-        likelihood=definition["pool.likelihood"],
-        tau_prior=definition["pool.tau_prior"],
-        mu_prior=definition["pool.mu_prior"],
-        discounts=discounts,
-        unit_sd=model_sd,
-        include_retracted=retracted_ok,
+    discounts, pooled, target = _pooled_target(
+        definition, entries, ratings, global_power, retracted_ok
     )
-    target = _target(pooled, definition, len(entries))
     fitted = _fit_family(target, definition, row, row.scale)
     model = unit_model(row, fitted.scale, definition)
     components = fitted.components
@@ -518,7 +530,84 @@ def _at_power(
         unit=model.unit,
         likelihood=model.likelihood,
     )
-    return _Run(pooled, target, discounts, fitted, components, model, ess, robust)
+    return _Run(pooled, discounts, target, fitted, components, model, ess, robust)
+
+
+# A solved cap is accepted when the built prior's ESS is within this of the cap (relative):
+# the tolerance of `registry.priors.ess.solve_power_for_cap`.
+CAP_TOLERANCE = 0.005
+# Builds tried at solved weights before the cap is declared unsolvable (usually one or two).
+CAP_BUILDS = 5
+
+
+def _solve_cap(
+    definition: Definition,
+    entries: Sequence[EntryLike],
+    ratings: Sequence[tuple[Rating, ...]],
+    row: Measure,
+    retracted_ok: bool,
+    run: _Run,
+    global_power: float,
+) -> tuple[float, _Run]:
+    """The global power weight at which the prior's ESS meets `discount.ess_cap`, and the
+    build at that weight.
+
+    The weight scales the pooled likelihood; the mixture fitted to the target only has to
+    keep the target's ESS (within `ESS_BOUND`). So the root is found on the exact target's
+    ESS (pooling and the target's density grid, no mixture fit) times the ratio of the built
+    prior's ESS to the exact target's at the last weight built, which absorbs the mixture's
+    approximation and the robust component and changes slowly with the weight. The prior is
+    then built once at the answer; where its ESS misses the cap by more than
+    `CAP_TOLERANCE` the ratio is renewed there and the root found again. A target without
+    an exact predictive has a closed-form fit that costs nothing, so every step builds.
+    """
+    from registry.priors.ess import power_for_ess_cap, solve_power_for_cap
+
+    cap = definition["discount.ess_cap"]
+
+    def build_at(a: float) -> _Run:
+        return _at_power(definition, entries, ratings, global_power * a, row, retracted_ok)
+
+    if run.target.exact is None:
+        a = power_for_ess_cap(lambda a: build_at(a).ess, cap, method=ESS_METHOD)
+        return global_power * a, build_at(a)
+
+    exact_at: dict[float, float] = {}
+
+    def exact(a: float) -> float | None:
+        if a not in exact_at:
+            target = _pooled_target(definition, entries, ratings, global_power * a, retracted_ok)
+            exact_at[a] = _EssCheck(target[2], run.fitted.scale, run.model).exact[ESS_METHOD]
+        return exact_at[a]
+
+    a, built = 1.0, run
+    for _ in range(CAP_BUILDS):
+        at_built = exact(a)
+        if at_built is None:
+            break  # the solver below says why
+        ratio = built.ess[ESS_METHOD] / at_built
+        a = solve_power_for_cap(
+            lambda w, r=ratio: None if exact(w) is None else r * exact(w), cap, method=ESS_METHOD
+        )
+        built = build_at(a)
+        if _meets_cap(built, cap):
+            return global_power * a, built
+    raise NumericalError(
+        f"the global power weight for the ESS cap {cap:g} was not found in {CAP_BUILDS} "
+        f"builds (the last, at {global_power * a:.6g}, has ESS "
+        f"{built.ess[ESS_METHOD]:.6g}); remove discount.ess_cap or change the output family"
+    )
+
+
+def inputs_digest(definition: Definition, entries: Sequence[EntryLike]) -> str:
+    """The digest a build of `definition` on `entries` will have, computed before (and
+    without) any pooling: it depends only on the definition, the entries and their ratings."""
+    return _digest(definition, entries, [rate_entry(e, definition) for e in entries])
+
+
+def _meets_cap(run: _Run, cap: float) -> bool:
+    value = run.ess[ESS_METHOD]
+    return value is not None and abs(value / cap - 1.0) <= CAP_TOLERANCE
 
 
 def unmatched_rules(definition: Definition, entries: Sequence[EntryLike]) -> list[str]:
@@ -528,51 +617,67 @@ def unmatched_rules(definition: Definition, entries: Sequence[EntryLike]) -> lis
     ]
 
 
+def idle_rules(
+    definition: Definition, entries: Sequence[EntryLike], *, strict: bool = False
+) -> list[str]:
+    """A warning for each rule that matches no entry; with `strict`, an error instead."""
+    idle = [
+        f"rule {name!r} matches no selected entry" for name in unmatched_rules(definition, entries)
+    ]
+    if idle and strict:
+        raise InputError(f"{idle[0]} (--strict)", field="rule", path=definition.path)
+    return idle
+
+
 def construct(
     definition: Definition,
     entries: Sequence[EntryLike],
     *,
     rebuild: bool = False,
     strict: bool = False,
+    solved_power: float | None = None,
 ) -> Construction:
     """Build the prior's components and lineage from entries (in order) and a definition.
 
     `rebuild` is for verifying a stored version from exactly the revisions it used: entries
     whose source has since been retracted are then kept (the version is reported stale).
-    A rule that matches no entry is a warning, or with `strict` an error.
+    `solved_power` is the global power weight a stored version solved its ESS cap with: it
+    is built first and kept if its ESS meets the cap (ESS grows with the weight, so a weight
+    below the definition's that meets the cap is the cap's solution), so that verifying
+    costs one build; otherwise the cap is solved again. A rule that matches no entry is a
+    warning, or with `strict` an error.
     """
-    from registry.priors.ess import information_shares, power_for_ess_cap
+    from registry.priors.ess import information_shares
 
     row = check_selection(entries)
-    idle = [
-        f"rule {name!r} matches no selected entry" for name in unmatched_rules(definition, entries)
-    ]
-    if idle and strict:
-        raise InputError(f"{idle[0]} (--strict)", field="rule", path=definition.path)
+    idle = idle_rules(definition, entries, strict=strict)
     ratings = [rate_entry(e, definition) for e in entries]
     digest = _digest(definition, entries, ratings)
     global_power = definition["discount.global_power"]
     retracted_ok = rebuild or definition["select.include_retracted"]
-    run = _at_power(definition, entries, ratings, global_power, row, retracted_ok)
     cap = definition["discount.ess_cap"]
     notes = list(idle)
-    headline = run.ess[ESS_METHOD]
-    if cap is not None and headline is None:
-        raise InputError(
-            f"the ESS cap is met on the {ESS_METHOD} effective sample size, which does not "
-            f"exist for this prior ({run.ess['notes'].get(ESS_METHOD, 'no value')}); remove "
-            "discount.ess_cap, or change the output family or the robust component",
-            field="discount.ess_cap",
-        )
-    if cap is not None and headline > cap:
-        global_power *= power_for_ess_cap(
-            lambda a: (
-                _at_power(definition, entries, ratings, global_power * a, row, retracted_ok).ess
-            ),
-            cap,
-            method=ESS_METHOD,
-        )
+    run = None
+    if cap is not None and solved_power is not None and solved_power < global_power:
+        run = _at_power(definition, entries, ratings, solved_power, row, retracted_ok)
+        run = run if _meets_cap(run, cap) else None
+    if run is not None:
+        global_power = solved_power
+    else:
         run = _at_power(definition, entries, ratings, global_power, row, retracted_ok)
+        headline = run.ess[ESS_METHOD]
+        if cap is not None and headline is None:
+            raise InputError(
+                f"the ESS cap is met on the {ESS_METHOD} effective sample size, which does not "
+                f"exist for this prior ({run.ess['notes'].get(ESS_METHOD, 'no value')}); "
+                "remove discount.ess_cap, or change the output family or the robust component",
+                field="discount.ess_cap",
+            )
+        if cap is not None and headline > cap:
+            global_power, run = _solve_cap(
+                definition, entries, ratings, row, retracted_ok, run, global_power
+            )
+    if global_power != definition["discount.global_power"]:
         notes.append(
             f"global power weight {global_power:.6g} solved so that the effective sample size "
             f"({ESS_METHOD}) meets the cap {cap:g}"

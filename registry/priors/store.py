@@ -12,12 +12,19 @@ from typing import Any
 from registry import __version__
 from registry.caution import CAUTION
 from registry.errors import InputError
-from registry.priors.build import Construction, construct
+from registry.priors.build import Construction, construct, idle_rules, inputs_digest
 from registry.priors.compare import Change, changes, rating_changes
 from registry.priors.definition import Definition, definition_from_canonical
 from registry.priors.selection import repeated_studies
 from registry.storage.ledger import EntryView, Ledger
-from registry.storage.priors import StoredPrior, Use, list_versions, load_version, save_version
+from registry.storage.priors import (
+    StoredPrior,
+    Use,
+    latest_version,
+    list_versions,
+    load_version,
+    save_version,
+)
 from registry.values.frozen import thaw
 
 __all__ = [
@@ -161,6 +168,10 @@ def build_prior(
     same digest (then that version is returned). `strict` makes a rule that matches no
     selected entry an error."""
     entries = select_entries(ledger, definition)
+    idle_rules(definition, entries, strict=strict)  # checked even when nothing is rebuilt
+    latest = latest_version(ledger, definition.name)
+    if latest is not None and latest.prior.digest == inputs_digest(definition, entries):
+        return latest  # nothing computed: the digest is of the inputs alone
     built = construct(definition, entries, strict=strict)
     uses = [
         Use(
@@ -221,8 +232,9 @@ def verify_prior(ledger: Ledger, label: str) -> Verification:
     say in one line per difference which setting, entry revision or component changed."""
     stored = get_prior(ledger, label)
     definition = definition_from_canonical(thaw(stored.definition))
-    entries = [ledger.revision(u.id, u.revision) for u in stored.uses]
-    rebuilt = construct(definition, entries, rebuild=True)
+    entries = ledger.revisions([(u.id, u.revision) for u in stored.uses])
+    # the stored weight is tried first: a verified cap costs one build, not a solve
+    rebuilt = construct(definition, entries, rebuild=True, solved_power=stored.result.global_power)
     differences = [
         f"setting {c.text()} (stored -> as read now)"
         for c in changes(stored.definition, definition.canonical())

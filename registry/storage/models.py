@@ -133,7 +133,13 @@ class EntryRevision(Base):
     """One immutable version of an entry: the numbers as reported and what was derived."""
 
     __tablename__ = "entry_revisions"
-    __table_args__ = (UniqueConstraint("entry_id", "revision"),)
+    __table_args__ = (
+        UniqueConstraint("entry_id", "revision"),
+        # Listings of a large registry (migration 0005): a quantity's entries in id order,
+        # and a source's entry count, each read from an index alone.
+        Index("ix_entry_revisions_quantity_entry", "quantity", "entry_id", "revision"),
+        Index("ix_entry_revisions_source_entry", "source_id", "entry_id"),
+    )
 
     id: Mapped[int] = mapped_column(primary_key=True)
     entry_id: Mapped[int] = mapped_column(ForeignKey("entries.id"))
@@ -168,7 +174,10 @@ class EntryRevision(Base):
 
 class EntryTag(Base):
     __tablename__ = "entry_tags"
-    __table_args__ = (Index("ix_entry_tags_tag", "tag"),)
+    __table_args__ = (
+        Index("ix_entry_tags_tag", "tag"),
+        Index("ix_entry_tags_tag_revision", "tag", "revision_id"),  # migration 0005
+    )
 
     revision_id: Mapped[int] = mapped_column(ForeignKey("entry_revisions.id"), primary_key=True)
     tag: Mapped[str] = mapped_column(String(100), primary_key=True)

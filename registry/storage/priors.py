@@ -7,12 +7,12 @@ stores nothing and returns that version; anything changed makes `N+1`.
 from __future__ import annotations
 
 import re
-from collections.abc import Mapping, Sequence
+from collections.abc import Iterable, Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any
 
 from sqlalchemy import func, select
-from sqlalchemy.orm import Session
+from sqlalchemy.orm import Session, selectinload
 
 from registry import __version__
 from registry.caution import CAUTION
@@ -103,16 +103,23 @@ class StoredPrior:
         }
 
 
+def latest_revisions_query(entry_ids: Iterable[int]):  # type: ignore[no-untyped-def]
+    """(entry id, latest revision) of each entry, read from the (entry, revision) index."""
+    return (
+        select(EntryRevision.entry_id, func.max(EntryRevision.revision))
+        .where(EntryRevision.entry_id.in_(set(entry_ids)))
+        .group_by(EntryRevision.entry_id)
+    )
+
+
 def _staleness(session: Session, row: PriorVersion) -> tuple[str, ...]:
+    used = [use.revision for use in row.uses]
+    latest = dict(session.execute(latest_revisions_query(rev.entry_id for rev in used)).all())
     reasons = []
-    for use in row.uses:
-        rev = use.revision
-        latest = session.scalar(
-            select(func.max(EntryRevision.revision)).where(EntryRevision.entry_id == rev.entry_id)
-        )
-        if latest > rev.revision:
+    for rev in used:
+        if latest[rev.entry_id] > rev.revision:
             reasons.append(
-                f"entry {rev.entry_id} has revision {latest}; this prior used "
+                f"entry {rev.entry_id} has revision {latest[rev.entry_id]}; this prior used "
                 f"revision {rev.revision}"
             )
         if rev.source.retracted:
@@ -155,9 +162,15 @@ def _stored(session: Session, row: PriorVersion, new: bool = False) -> StoredPri
     )
 
 
+# A version's uses with their revisions and sources, loaded with it (not one query a use).
+_WITH_USES = (
+    selectinload(PriorVersion.uses).joinedload(PriorEntry.revision).joinedload(EntryRevision.source)
+)
+
+
 def _find(session: Session, label: str) -> PriorVersion:
     name, version = parse_label(label)
-    query = select(PriorVersion).where(PriorVersion.name == name)
+    query = select(PriorVersion).where(PriorVersion.name == name).options(_WITH_USES)
     query = (
         query.where(PriorVersion.version == version)
         if version is not None
@@ -227,10 +240,20 @@ def load_version(ledger: Ledger, label: str) -> StoredPrior:
         return _stored(session, _find(session, label))
 
 
+def latest_version(ledger: Ledger, name: str) -> StoredPrior | None:
+    """The latest version of `name`, or None if it was never built."""
+    try:
+        return load_version(ledger, name)
+    except NotFoundError:
+        return None
+
+
 def list_versions(ledger: Ledger) -> list[StoredPrior]:
     """Every stored version, by name, oldest version first."""
     with ledger.session() as session:
         rows = session.scalars(
-            select(PriorVersion).order_by(PriorVersion.name, PriorVersion.version)
+            select(PriorVersion)
+            .order_by(PriorVersion.name, PriorVersion.version)
+            .options(_WITH_USES)
         )
         return [_stored(session, r) for r in rows]

@@ -92,10 +92,17 @@ class Family:
         return _CANONICAL[self.support]
 
     def frozen(self) -> Any:
-        """The scipy.stats frozen distribution (the reference for every method below)."""
-        from scipy import stats
+        """The scipy.stats frozen distribution (the reference for every method below).
 
-        return getattr(stats, self.scipy_name)(**self.params)
+        Made once per value and kept: making one costs far more than evaluating it, and a
+        mixture's quantiles evaluate each component's cdf thousands of times."""
+        made = self.__dict__.get("_frozen")
+        if made is None:
+            from scipy import stats
+
+            made = getattr(stats, self.scipy_name)(**self.params)
+            object.__setattr__(self, "_frozen", made)
+        return made
 
     def logpdf(self, x: Any) -> Any:
         return self.frozen().logpdf(x)
