@@ -456,7 +456,7 @@ def _update(result: Any) -> Html:
             start=1,
         )
     ]
-    return tag(
+    posterior = tag(
         "section",
         tag("h3", f"Posterior after the new data {show(doc['data'])}"),
         pairs(
@@ -468,8 +468,18 @@ def _update(result: Any) -> Html:
             ]
         ),
         table(
-            ("component", "family", "posterior form", "prior weight", "posterior weight"), weights
+            ("component", "family", "posterior component", "prior weight", "posterior weight"),
+            weights,
         ),
+        figure(
+            svg_text(update_figure(result)),
+            "Prior, likelihood and posterior, as priorledger update draws them; method: "
+            f"{post['method']}.",
+        ),
+        id="posterior",
+    )
+    return posterior + tag(
+        "section",
         tag("h3", "Prior-data conflict"),
         pairs(
             [
@@ -479,12 +489,7 @@ def _update(result: Any) -> Html:
                 ("its accuracy", conflict["predictive_accuracy"]),
             ]
         ),
-        figure(
-            svg_text(update_figure(result)),
-            "Prior, likelihood and posterior, as priorledger update draws them; method: "
-            f"{post['method']}.",
-        ),
-        id="posterior",
+        id="conflict",
     )
 
 
