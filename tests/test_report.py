@@ -2,7 +2,9 @@
 
 The report is checked as a document (html5lib, a well-kept HTML5 parser) and in a real
 browser (Debian's chromium, installed in CI by .ci/browser.sh); summaries in the diff are
-checked against scipy's normal distribution.
+checked against scipy's normal distribution. The checks in the report are built on the BCG
+trials (Colditz et al. 1994, JAMA 271:698; counts in tests/test_frequentist.py): the risk of
+tuberculosis in the unvaccinated arms (a proportion) and the log risk ratio.
 """
 
 from __future__ import annotations
@@ -22,6 +24,8 @@ from registry.priors.diff import diff_priors
 from registry.priors.store import build_prior, selection, trace_prior
 from registry.report.html import write_report
 from registry.storage.ledger import Ledger
+from tests.conftest import write_sheet
+from tests.test_frequentist import BCG_COUNTS, SE, Y
 from tests.test_priors import BASE, bcg, definition_file  # noqa: F401 (bcg is a fixture)
 
 DEMO_PRIOR = "falls-programme-effect"
@@ -282,3 +286,161 @@ def test_every_conversion_in_the_evidence_tests_has_a_published_source() -> None
     assert len(names) > 10
     missing = sorted(n for n in names if conversion_source(n) is None)
     assert missing == []
+
+
+CONTROL_RISK = """
+name = "bcg-control"
+parameter = "risk of tuberculosis without vaccination"
+target = "mean"
+[select]
+quantity = "bcg-control-tb-risk"
+[pool]
+method = "common"
+[discount]
+mechanism = "none"
+[output]
+plausible = [0.001, 0.05]
+"""
+
+
+@pytest.fixture
+def bcg_checked(bcg: Path, tmp_path: Path, cli) -> Path:  # noqa: F811
+    """The BCG registry with two common-effect priors: the log risk ratio (`bcg`) and the
+    risk in the unvaccinated arms (`bcg-control`, events out of participants)."""
+    rows = [
+        [f"bcg{i:02d}", "bcg-control-tb-risk", "proportion", c, c + d, "Table 1"]
+        for i, (_, _, c, d) in enumerate(BCG_COUNTS)
+    ]
+    header = ["source", "quantity", "measure", "events", "total", "location"]
+    sheet = write_sheet(tmp_path / "control.csv", header, *rows)
+    assert cli("import", sheet, "--db", bcg).code == 0
+    for text, name in ((BASE, "bcg.toml"), (CONTROL_RISK, "control.toml")):
+        assert cli("build", definition_file(tmp_path, text, name), "--db", bcg).code == 0
+    return bcg
+
+
+def _section(text: str, section: str) -> tuple[dict[str, str], list[list[str]], list[str]]:
+    """A section of the report: its label -> value rows, its tables' data rows, its images."""
+    import html5lib
+
+    document = html5lib.parse(text, namespaceHTMLElements=False)
+    (found,) = document.iterfind(f".//section[@id='{section}']")
+    labelled, rows = {}, []
+    for row in found.iterfind(".//tr"):
+        cells = ["".join(c.itertext()) for c in row]
+        if row[0].tag == "th" and len(cells) == 2:
+            labelled[cells[0]] = cells[1]
+        elif row[0].tag == "td":
+            rows.append(cells)
+    return labelled, rows, [img.get("src") for img in found.iterfind(".//img")]
+
+
+@pytest.mark.parametrize(
+    ("label", "size", "result"),
+    [
+        ("bcg-control", ("--n", "500"), ("--events", "9")),
+        ("bcg", ("--se", "0.2"), ("--estimate", "-0.1")),
+    ],
+)
+def test_report_with_new_data_shows_predict_and_update(
+    bcg_checked: Path, tmp_path: Path, cli, label: str, size: tuple, result: tuple
+) -> None:
+    db = ("--db", bcg_checked)
+    out = tmp_path / "checked.html"
+    assert cli("report", label, "--out", out, *size, *result, *db).code == 0
+    text = out.read_text()
+    predicted = json.loads(cli("predict", label, *size, "--json", *db).stdout)
+    updated = json.loads(cli("update", label, *size, *result, "--json", *db).stdout)
+
+    rows, _, images = _section(text, "prior-predictive")
+    assert rows["mean"] == f"{predicted['mean']:.6g}"
+    assert rows["sd"] == f"{predicted['sd']:.6g}"
+    for q, value in predicted["quantiles"].items():
+        assert rows[f"{float(q):.1%} quantile"] == f"{value:.6g}"
+    if predicted["plausible_range"] is None:  # the BCG definition sets no plausible range
+        assert rows["plausible range"].startswith("none: ")
+    else:
+        lo, hi = predicted["plausible_range"]
+        assert rows[f"P({lo:g} <= result <= {hi:g}), the plausible range"] == (
+            f"{predicted['plausible']:.6g}"
+        )
+    assert rows["method"] == predicted["method"]
+    assert rows["accuracy"] == f"{predicted['accuracy']:.6g}"
+    assert len(images) == 1 and images[0].startswith("data:image/svg+xml;base64,")
+
+    rows, weights, images = _section(text, "posterior")
+    posterior, conflict = updated["posterior"], updated["conflict"]
+    assert rows["mean"] == f"{posterior['mean']:.6g}"
+    assert rows["sd"] == f"{posterior['sd']:.6g}"
+    for q, value in posterior["quantiles"].items():
+        assert rows[f"{float(q):.1%} quantile"] == f"{value:.6g}"
+    assert rows["method"] == posterior["method"]
+    assert rows["accuracy"] == f"{posterior['accuracy']:.6g}"
+    assert [(w[3], w[4]) for w in weights] == [
+        (f"{a:.6g}", f"{b:.6g}")
+        for a, b in zip(updated["weights"]["prior"], updated["weights"]["posterior"], strict=True)
+    ]
+    assert len(images) == 1 and images[0].startswith("data:image/svg+xml;base64,")
+
+    rows, _, _ = _section(text, "conflict")
+    assert rows["tail probability (p-value)"] == f"{conflict['p_value']:.6g}"
+    assert rows["method"] == conflict["method"] and rows["method"].startswith("Box (1980)")
+    assert rows["prior predictive"] == conflict["predictive"]
+
+
+def test_report_checks_of_the_bcg_prior_match_the_normal_closed_forms(
+    bcg_checked: Path, tmp_path: Path, cli
+) -> None:
+    """The common-effect BCG prior is N(m, s²) with m, s from statsmodels' combine_effects;
+    a study with standard error S predicts N(m, s² + S²); the posterior after y is normal with
+    precision 1/s² + 1/S² (common practice); Box's (1980) two-sided tail probability is
+    2 min(Phi(z), 1 - Phi(z)), z = (y - m) / sqrt(s² + S²)."""
+    from statsmodels.stats.meta_analysis import combine_effects
+
+    reference = combine_effects(Y, SE**2)
+    m, s2, big_s, y = reference.mean_effect_fe, reference.sd_eff_w_fe**2, 0.2, -0.1
+    out = tmp_path / "bcg.html"
+    data = ("--se", str(big_s), "--estimate", str(y), "--db", bcg_checked)
+    assert cli("report", "bcg", "--out", out, *data).code == 0
+    text = out.read_text()
+    predicted = stats.norm(m, (s2 + big_s**2) ** 0.5)
+    precision = 1 / s2 + 1 / big_s**2
+    posterior = stats.norm((m / s2 + y / big_s**2) / precision, precision**-0.5)
+    tail = 2 * min(predicted.cdf(y), predicted.sf(y))
+    for section, dist in (("prior-predictive", predicted), ("posterior", posterior)):
+        rows, _, _ = _section(text, section)
+        assert float(rows["mean"]) == pytest.approx(dist.mean(), rel=1e-5)
+        assert float(rows["sd"]) == pytest.approx(dist.std(), rel=1e-5)
+        assert float(rows["97.5% quantile"]) == pytest.approx(dist.ppf(0.975), rel=1e-5)
+    rows, _, _ = _section(text, "conflict")
+    assert float(rows["tail probability (p-value)"]) == pytest.approx(tail, rel=1e-5)
+
+
+def test_report_with_a_planned_size_only_has_no_posterior(bcg_checked: Path, tmp_path, cli):
+    out = tmp_path / "planned.html"
+    assert cli("report", "bcg-control", "--out", out, "--n", "200", "--db", bcg_checked).code == 0
+    text = out.read_text()
+    assert 'id="prior-predictive"' in text and 'id="posterior"' not in text
+    plain = tmp_path / "plain.html"
+    assert cli("report", "bcg-control", "--out", plain, "--db", bcg_checked).code == 0
+    assert 'id="prior-predictive"' not in plain.read_text()
+
+
+@pytest.mark.parametrize(
+    ("args", "message"),
+    [
+        (("bcg", "--events", "3", "--n", "10"), "not --events"),
+        (("bcg", "--estimate", "-0.5"), "give the study's size as --se"),
+        (("bcg", "--se", "0"), "must be greater than 0"),
+        (("bcg-control", "--n", "10", "--estimate", "0.1"), "not --estimate"),
+        (("bcg-control", "--n", "10", "--events", "11"), "cannot exceed n"),
+        (("bcg-control", "--events", "3"), "give the study's size as --n"),
+    ],
+)
+def test_report_with_a_bad_study_exits_2_with_one_line(
+    bcg_checked: Path, tmp_path: Path, cli, args: tuple[str, ...], message: str
+) -> None:
+    out = tmp_path / "bad.html"
+    result = cli("report", *args, "--out", out, "--db", bcg_checked)
+    assert result.code == 2 and result.stdout == "" and not out.exists()
+    assert len(result.stderr.strip().splitlines()) == 1 and message in result.stderr

@@ -7,6 +7,7 @@ from typing import TYPE_CHECKING, Annotated
 
 import typer
 
+from registry.cli.check_cmds import Estimate, Events, Exposure, N, Se
 from registry.cli.common import DbOption, JsonOption, err, ledger, out, print_json
 
 if TYPE_CHECKING:
@@ -78,16 +79,29 @@ def report(
             "--languages", metavar="LANG,LANG", help="Emitted code to include, e.g. stan,pymc."
         ),
     ] = "stan,pymc",
+    n: N = None,
+    exposure: Exposure = None,
+    se: Se = None,
+    events: Events = None,
+    estimate: Estimate = None,
     db: DbOption = None,
 ) -> None:
     """Write one self-contained HTML report of a prior for a reviewer (rebuilt and verified).
 
-    Example: priorledger report falls-programme-effect@1 --out falls-effect.html
+    A planned study's size (--n, --exposure or --se) adds the prior predictive of its result;
+    new data (--events with --n or --exposure, --estimate with --se) also adds the posterior
+    and the prior-data conflict check, as predict and update give them.
+
+    Example: priorledger report falls-control-rate --exposure 150 --events 160 --out rate.html
     """
-    from registry.report.html import write_report
+    from registry.report.html import StudyOptions, write_report
 
     with err.status("rebuilding and writing the report"):
         written = write_report(
-            ledger(db), label, out_file, languages=[x.strip() for x in languages.split(",")]
+            ledger(db),
+            label,
+            out_file,
+            languages=[x.strip() for x in languages.split(",")],
+            study=StudyOptions(n, exposure, se, events, estimate),
         )
     err.print(f"written to {written.path} ({written.size} bytes); verify: {written.verify}")

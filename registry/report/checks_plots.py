@@ -3,7 +3,8 @@ likelihood and posterior after new data, and the posterior across discount setti
 
 Drawn with matplotlib's Agg canvas (no display needed); the format follows the file's suffix
 (png, pdf or svg). The path is checked before any work (`figure_path`) so that a slow sweep
-never ends in an unwritable file.
+never ends in an unwritable file. `predictive_figure` and `update_figure` return the figure
+itself, which the reviewer's report draws to SVG in memory.
 """
 
 from __future__ import annotations
@@ -46,10 +47,14 @@ def _axes(title: str) -> tuple[Any, Any]:
     return fig, ax
 
 
-def _save(fig: Any, ax: Any, path: str | Path) -> Path:
-    path = figure_path(path)
+def _finished(fig: Any, ax: Any) -> Any:
     ax.legend(fontsize=8, frameon=False)
     fig.tight_layout()
+    return fig
+
+
+def _save(fig: Any, path: str | Path) -> Path:
+    path = figure_path(path)
     try:
         fig.savefig(path, format=path.suffix.lower().lstrip("."), dpi=150)
     except OSError as error:
@@ -82,7 +87,7 @@ def _shown_range(x: Any, *parts: tuple[Any, float]) -> tuple[float, float]:
     return lo, hi
 
 
-def predictive_plot(path: str | Path, prediction: Any) -> Path:
+def predictive_figure(prediction: Any) -> Any:
     """Bars of P(events = k) for a count, else the density of the estimate; the definition's
     plausible range shaded, with its probability."""
     import numpy as np
@@ -110,10 +115,15 @@ def predictive_plot(path: str | Path, prediction: Any) -> Path:
             label=f"plausible range: P = {doc['plausible']:.3f}",
         )
     ax.axvline(doc["mean"], color="0.3", ls="--", lw=1, label=f"mean {doc['mean']:.4g}")
-    return _save(fig, ax, path)
+    return _finished(fig, ax)
 
 
-def update_plot(path: str | Path, result: Any) -> Path:
+def predictive_plot(path: str | Path, prediction: Any) -> Path:
+    """`predictive_figure` written to `path`."""
+    return _save(predictive_figure(prediction), path)
+
+
+def update_figure(result: Any) -> Any:
     """Prior, likelihood and posterior densities on the prior's scale; the likelihood is
     normalised to integrate to 1 over that scale (the posterior under a flat prior there), so
     the three curves share one axis. The title gives Box's conflict tail probability."""
@@ -143,7 +153,12 @@ def update_plot(path: str | Path, result: Any) -> Path:
         ax.plot(theta[inside], curve[inside], label=label, **style)
     ax.set_xlabel(f"parameter on the prior's scale ({post.scale})")
     ax.set_ylabel("density")
-    return _save(fig, ax, path)
+    return _finished(fig, ax)
+
+
+def update_plot(path: str | Path, result: Any) -> Path:
+    """`update_figure` written to `path`."""
+    return _save(update_figure(result), path)
 
 
 def sensitivity_plot(path: str | Path, result: Any) -> Path:
@@ -185,4 +200,4 @@ def sensitivity_plot(path: str | Path, result: Any) -> Path:
         ax.plot(values, [s.mean for s in summaries], "o-", color="tab:blue", label="mean")
         ax.set_ylabel(f"posterior on the prior's scale ({result.rows[0].posterior.scale})")
     ax.set_xlabel(result.over.replace("_", " "))
-    return _save(fig, ax, path)
+    return _save(_finished(fig, ax), path)

@@ -34,7 +34,8 @@ class ForestRow:
     share: float
 
 
-def _svg(figure: Any) -> str:
+def svg_text(figure: Any) -> str:
+    """The figure as SVG text, drawn in memory."""
     import matplotlib
 
     buffer = io.StringIO()
@@ -66,7 +67,7 @@ def discount_forest_svg(rows: Sequence[ForestRow], scale: str) -> str:
     ax.set_xlabel(f"estimate on the {scale} scale; grey: as reported, blue: after discount")
     ax.set_title("95% intervals before and after discount")
     figure.tight_layout()
-    return _svg(figure)
+    return svg_text(figure)
 
 
 def _on_analysis_scale(prior: Prior, analysis: str, phi: Any) -> Any:
@@ -133,4 +134,4 @@ def predictive_svg(
     ax.set_title(caption, fontsize=9)
     ax.legend(fontsize=8)
     figure.tight_layout()
-    return _svg(figure)
+    return svg_text(figure)

@@ -19,7 +19,7 @@ import base64
 import html
 import json
 from collections.abc import Iterable, Mapping, Sequence
-from dataclasses import dataclass
+from dataclasses import asdict, dataclass
 from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
@@ -31,7 +31,7 @@ from registry.evidence.convert import CONTINUITY_SOURCE, conversion_source
 from registry.priors.compare import show
 from registry.priors.diff import Summary
 from registry.priors.store import Verification, get_prior, trace_prior, verify_prior
-from registry.report.figures import ForestRow, discount_forest_svg, predictive_svg
+from registry.report.figures import ForestRow, discount_forest_svg, predictive_svg, svg_text
 from registry.storage.ledger import Ledger
 from registry.storage.priors import StoredPrior
 from registry.values.ess_methods import TABLE as ESS_TABLE
@@ -373,9 +373,150 @@ def _code(stored: StoredPrior, languages: Sequence[str]) -> Html:
     return Html("".join(parts))
 
 
-def render_report(ledger: Ledger, label: str, languages: Sequence[str]) -> tuple[str, Verification]:
+@dataclass(frozen=True)
+class StudyOptions:
+    """A planned study's size (`n`, `exposure` or `se`, whichever the prior's measure takes)
+    and, for new data, its result (`events` or `estimate`): the options of `predict` and
+    `update`, with their meaning."""
+
+    n: float | None = None
+    exposure: float | None = None
+    se: float | None = None
+    events: float | None = None
+    estimate: float | None = None
+
+    @property
+    def given(self) -> bool:
+        return any(v is not None for v in asdict(self).values())
+
+    @property
+    def observed(self) -> bool:
+        return self.events is not None or self.estimate is not None
+
+
+def _distribution_rows(doc: Mapping[str, Any]) -> list[tuple[str, Any]]:
+    """Mean, sd and quantiles of a checks document (`predict` or `update`'s posterior)."""
+    rows: list[tuple[str, Any]] = [
+        ("mean", doc["mean"]),
+        ("sd", "not finite" if doc["sd"] is None else doc["sd"]),
+    ]
+    return rows + [(f"{float(q):.1%} quantile", v) for q, v in doc["quantiles"].items()]
+
+
+def _prediction(prediction: Any) -> Html:
+    from registry.report.checks_plots import predictive_figure
+
+    doc = prediction.to_dict()
+    if doc["plausible"] is None:
+        plausible = ("plausible range", "none: the definition sets no [output] plausible range")
+    else:
+        lo, hi = doc["plausible_range"]
+        plausible = (f"P({lo:g} <= result <= {hi:g}), the plausible range", doc["plausible"])
+    return tag(
+        "section",
+        tag("h3", f"Prior predictive of the planned study {show(doc['design'])}"),
+        pairs(
+            [
+                ("predicted", doc["outcome"]),
+                *_distribution_rows(doc),
+                plausible,
+                ("method", doc["method"]),
+                ("accuracy", doc["accuracy"]),
+            ]
+        ),
+        figure(
+            svg_text(predictive_figure(prediction)),
+            f"Prior predictive of the planned study's {doc['outcome']}, as "
+            f"priorledger predict draws it; method: {doc['method']}.",
+        ),
+        id="prior-predictive",
+    )
+
+
+def _update(result: Any) -> Html:
+    from registry.report.checks_plots import update_figure
+
+    doc = result.to_dict()
+    post, conflict = doc["posterior"], doc["conflict"]
+    weights = [
+        (
+            i,
+            c["family"],
+            ", ".join(f"{k} = {show(v)}" for k, v in c.items() if k not in ("weight", "family")),
+            before,
+            after,
+        )
+        for i, (c, before, after) in enumerate(
+            zip(
+                post["components"],
+                doc["weights"]["prior"],
+                doc["weights"]["posterior"],
+                strict=True,
+            ),
+            start=1,
+        )
+    ]
+    posterior = tag(
+        "section",
+        tag("h3", f"Posterior after the new data {show(doc['data'])}"),
+        pairs(
+            [
+                ("scale", post["scale"]),
+                *_distribution_rows(post),
+                ("method", post["method"]),
+                ("accuracy", post["accuracy"]),
+            ]
+        ),
+        table(
+            ("component", "family", "posterior component", "prior weight", "posterior weight"),
+            weights,
+        ),
+        figure(
+            svg_text(update_figure(result)),
+            "Prior, likelihood and posterior, as priorledger update draws them; method: "
+            f"{post['method']}.",
+        ),
+        id="posterior",
+    )
+    return posterior + tag(
+        "section",
+        tag("h3", "Prior-data conflict"),
+        pairs(
+            [
+                ("tail probability (p-value)", conflict["p_value"]),
+                ("method", conflict["method"]),
+                ("prior predictive", conflict["predictive"]),
+                ("its accuracy", conflict["predictive_accuracy"]),
+            ]
+        ),
+        id="conflict",
+    )
+
+
+def _checks(ledger: Ledger, label: str, study: StudyOptions) -> Html:
+    """The checks commands' results for the options given: the update and conflict check
+    (new data) first, so that its options are checked together, then the predictive of a
+    study of that size."""
+    if not study.given:
+        return Html("")
+    from registry.checks.posterior import update_prior
+    from registry.checks.predictive import predict
+
+    update = _update(update_prior(ledger, label, **asdict(study))) if study.observed else ""
+    size = predict(ledger, label, n=study.n, exposure=study.exposure, se=study.se)
+    return Html(tag("h2", "Checks with a planned study or new data") + _prediction(size) + update)
+
+
+def render_report(
+    ledger: Ledger,
+    label: str,
+    languages: Sequence[str],
+    study: StudyOptions = StudyOptions(),
+) -> tuple[str, Verification]:
     """The report of `label` as one HTML5 document, and the verification it shows (the prior
-    is rebuilt at report time)."""
+    is rebuilt at report time). With a planned study's size, also the prior predictive of its
+    result; with new data, also the posterior and the prior-data conflict check (the library
+    functions of `predict` and `update`)."""
     from registry.emit import LANGUAGES
 
     unknown = [x for x in languages if x not in LANGUAGES]
@@ -384,6 +525,8 @@ def render_report(ledger: Ledger, label: str, languages: Sequence[str]) -> tuple
             f"unknown language {unknown[0]!r}; one of {', '.join(LANGUAGES)}", field="--languages"
         )
     stored = get_prior(ledger, label)
+    # before the rebuild, so that a bad option fails at once
+    checks = _checks(ledger, stored.prior.label, study)
     check = verify_prior(ledger, stored.prior.label)
     doc = trace_prior(ledger, stored.prior.label)
     body = "".join(
@@ -392,6 +535,7 @@ def render_report(ledger: Ledger, label: str, languages: Sequence[str]) -> tuple
             _summary(stored),
             _ess(stored),
             _figures(stored, doc, check),
+            checks,
             _definition(stored.definition),
             tag("h2", f"Entries used ({len(doc['entries'])})"),
             *(_entry(e) for e in doc["entries"]),
@@ -410,12 +554,18 @@ def render_report(ledger: Ledger, label: str, languages: Sequence[str]) -> tuple
 
 
 def write_report(
-    ledger: Ledger, label: str, path: str | Path, *, languages: Sequence[str] = ("stan", "pymc")
+    ledger: Ledger,
+    label: str,
+    path: str | Path,
+    *,
+    languages: Sequence[str] = ("stan", "pymc"),
+    study: StudyOptions = StudyOptions(),
 ) -> Written:
-    """Write the report of `label` to `path` (its folder must exist)."""
+    """Write the report of `label` to `path` (its folder must exist); `study` as in
+    `render_report`."""
     path = Path(path)
     if not path.parent.is_dir():
         raise InputError(f"folder {path.parent} does not exist", field="--out")
-    text, check = render_report(ledger, label, languages)
+    text, check = render_report(ledger, label, languages, study)
     path.write_text(text, encoding="utf-8")
     return Written(path, path.stat().st_size, "ok" if check.ok else "FAILED")
