@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import json
 import sys
+from pathlib import Path
 from typing import Annotated, Any, Literal
 
 import typer
@@ -20,6 +21,8 @@ from rich.style import Style
 from rich.table import Column, Table
 from rich.text import Text
 
+from registry.errors import InputError
+
 DbOption = Annotated[
     str | None,
     typer.Option(
@@ -27,6 +30,15 @@ DbOption = Annotated[
         envvar="PRIORLEDGER_DB",
         metavar="URL_OR_PATH",
         help="Registry: a SQLAlchemy URL or a SQLite file path (default: ./priorledger.db).",
+        show_default=False,
+    ),
+]
+EncodingOption = Annotated[
+    str | None,
+    typer.Option(
+        "--encoding",
+        metavar="ENCODING",
+        help="The file's text encoding if it is not UTF-8 (for example latin-1, cp1252).",
         show_default=False,
     ),
 ]
@@ -82,6 +94,24 @@ class PlainConsole(Console):
 
 out = PlainConsole()
 err = PlainConsole(stderr=True)
+
+
+def output_file(path: Path, option: str) -> Path:
+    """A file to write, refused (InputError) when it is a folder or its folder is missing."""
+    if path.is_dir():
+        raise InputError(f"{path} is a folder; give a file name", field=option)
+    if not path.parent.is_dir():
+        raise InputError(f"folder {path.parent} does not exist", field=option)
+    return path
+
+
+def output_folder(path: Path, option: str) -> Path:
+    """A folder to write into, made if missing; refused when a file is in the way."""
+    try:
+        path.mkdir(parents=True, exist_ok=True)
+    except OSError as error:
+        raise InputError(f"cannot make folder {path}: {error.strerror}", field=option) from None
+    return path
 
 
 def print_json(doc: Any) -> None:

@@ -10,6 +10,7 @@ from rich.text import Text
 
 from registry.cli.common import (
     DbOption,
+    EncodingOption,
     JsonOption,
     MeasureOption,
     QuantityOption,
@@ -47,6 +48,7 @@ def import_sheet(
     dry_run: Annotated[
         bool, typer.Option("--dry-run", help="Check and report; write nothing.")
     ] = False,
+    encoding: EncodingOption = None,
     db: DbOption = None,
     as_json: JsonOption = False,
 ) -> None:
@@ -54,7 +56,7 @@ def import_sheet(
 
     Example: priorledger import falls-sheet.csv --dry-run
     """
-    report = ledger(db).import_sheet(sheet, dry_run=dry_run)
+    report = ledger(db).import_sheet(sheet, dry_run=dry_run, encoding=encoding)
     if as_json:
         print_json(report.to_dict())
         return
@@ -95,6 +97,7 @@ def sources_import(
     file: Annotated[
         Path, typer.Argument(metavar="FILE", help="Bibliography, .bib (BibTeX) or .ris (RIS).")
     ],
+    encoding: EncodingOption = None,
     db: DbOption = None,
     as_json: JsonOption = False,
 ) -> None:
@@ -102,7 +105,7 @@ def sources_import(
 
     Example: priorledger sources import refs.bib
     """
-    report = ledger(db).import_sources(file)
+    report = ledger(db).import_sources(file, encoding=encoding)
     if as_json:
         print_json(report.to_dict())
         return

@@ -616,4 +616,17 @@ def derive(measure: str, reported: Mapping[str, float]) -> Derived:
         )
     values = _checked_columns(reported)
     form = _select_form(measure, frozenset(values))
-    return form.compute(measure, values)
+    return _finite(form.compute(measure, values), form)
+
+
+def _finite(derived: Derived, form: _Form) -> Derived:
+    """Refuse what floating point cannot carry: a y or se that overflowed to inf or NaN, or
+    an se that underflowed to 0 (then the entry would claim infinite precision)."""
+    if not (math.isfinite(derived.y) and math.isfinite(derived.se) and derived.se > 0):
+        raise ConversionError(
+            f"the numbers of '{form.label}' give y = {derived.y:g}, se = {derived.se:g}; "
+            "a usable entry needs both finite and se > 0 (are the numbers far too large or "
+            "too small?)",
+            field=form.fields[0],
+        )
+    return derived

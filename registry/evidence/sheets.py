@@ -7,16 +7,15 @@ sees. A bad cell raises `InputError` naming the file, row and column.
 
 from __future__ import annotations
 
-import csv
 import hashlib
 import json
 import re
-from collections.abc import Iterator
 from dataclasses import dataclass, field, replace
 from pathlib import Path
 
 from registry.errors import ConversionError, InputError
 from registry.evidence.convert import NUMERIC_FIELDS, Derived, derive
+from registry.evidence.reading import read_grid
 from registry.values.measures import MEASURES
 
 REQUIRED = ("source", "quantity", "measure")
@@ -62,35 +61,9 @@ class SheetRow:
     fingerprint: str = ""
 
 
-def _cell_text(value: object) -> str:
-    if value is None:
-        return ""
-    if isinstance(value, float) and value.is_integer():
-        return str(int(value))
-    return str(value).strip()
-
-
-def _read_xlsx(path: Path) -> Iterator[list[str]]:
-    from openpyxl import load_workbook
-
-    workbook = load_workbook(path, read_only=True, data_only=True)
-    try:
-        for values in workbook.worksheets[0].iter_rows(values_only=True):
-            yield [_cell_text(v) for v in values]
-    finally:
-        workbook.close()
-
-
-def read_cells(path: Path) -> list[dict[str, str]]:
+def read_cells(path: Path, encoding: str | None = None) -> list[dict[str, str]]:
     """The sheet's data rows as column -> text, empty cells left out."""
-    suffix = path.suffix.lower()
-    if suffix == ".csv":
-        with path.open(newline="", encoding="utf-8-sig") as handle:
-            grid = [[c.strip() for c in line] for line in csv.reader(handle)]
-    elif suffix in (".xlsx", ".xlsm"):
-        grid = list(_read_xlsx(path))
-    else:
-        raise InputError("an extraction sheet must be .csv or .xlsx", path=str(path))
+    grid = read_grid(path, encoding)
     if not grid:
         raise InputError("the sheet is empty", path=str(path))
     header = [h.strip().lower() for h in grid[0]]
@@ -168,13 +141,13 @@ def parse_row(cells: dict[str, str]) -> SheetRow:
     )
 
 
-def read_sheet(path: str | Path) -> list[SheetRow]:
+def read_sheet(path: str | Path, *, encoding: str | None = None) -> list[SheetRow]:
     """Every row of a sheet, validated; the first bad cell raises with file, row and column."""
     path = Path(path)
     if not path.is_file():
         raise InputError("no such file", path=str(path))
     rows = []
-    for number, cells in enumerate(read_cells(path), start=2):
+    for number, cells in enumerate(read_cells(path, encoding), start=2):
         if not cells:
             continue
         try:

@@ -217,6 +217,7 @@ class Ledger:
     def __init__(self, engine: Engine) -> None:
         self.engine = engine
         self._sessions = sessionmaker(engine, expire_on_commit=False)
+        self._writes = sessionmaker(db.writer(engine), expire_on_commit=False)
 
     @classmethod
     def open(cls, location: str | None = None) -> Ledger:
@@ -234,18 +235,21 @@ class Ledger:
         return self._sessions()
 
     def transaction(self, *, commit: bool = True):  # type: ignore[no-untyped-def]
-        return db.transaction(self._sessions, commit=commit)
+        return db.transaction(self._writes, commit=commit)
 
     # sources -------------------------------------------------------------------------------
 
-    def import_sources(self, path: str | Path) -> SourceImportReport:
+    @db.retried
+    def import_sources(
+        self, path: str | Path, *, encoding: str | None = None
+    ) -> SourceImportReport:
         """Add a bibliography's references; fill in fields a stub source lacks.
 
         A reference whose key exists with a different value for a field already set is an
         error: a source is corrected deliberately, not by re-importing.
         """
         path = Path(path)
-        records = read_bibliography(path)
+        records = read_bibliography(path, encoding=encoding)
         added, completed, unchanged = [], [], 0
         with self.transaction() as session:
             for record in records:
@@ -303,12 +307,13 @@ class Ledger:
                 for s in session.scalars(select(Source).order_by(Source.key))
             ]
 
+    @db.retried
     def retract(self, key: str, reason: str) -> SourceView:
         """Flag a source as retracted; nothing is deleted and priors built on it say so."""
         if not reason.strip():
             raise InputError("a retraction needs a reason", field="--reason")
         with self.transaction() as session:
-            source = session.scalar(select(Source).where(Source.key == key))
+            source = session.scalar(select(Source).where(Source.key == key).with_for_update())
             if source is None:
                 raise NotFoundError(f"no source with key {key!r}")
             if source.retracted:
@@ -320,13 +325,16 @@ class Ledger:
 
     # entries -------------------------------------------------------------------------------
 
-    def import_sheet(self, path: str | Path, *, dry_run: bool = False) -> ImportReport:
+    @db.retried
+    def import_sheet(
+        self, path: str | Path, *, dry_run: bool = False, encoding: str | None = None
+    ) -> ImportReport:
         """Import every row of an extraction sheet, or none: one bad row writes nothing.
 
         A row already in the registry (same cells, from any sheet) is skipped and counted.
         """
         path = Path(path)
-        rows = read_sheet(path)
+        rows = read_sheet(path, encoding=encoding)
         with self.transaction(commit=not dry_run) as session:
             known = set(
                 session.scalars(
@@ -448,7 +456,7 @@ class Ledger:
             query = query.where(
                 EntryRevision.source_id.in_(select(Source.id).where(Source.key.in_(list(sources))))
             )
-        ids = list(ids)
+        ids = [db.check_id(i, "--id") for i in ids]
         if ids:
             query = query.where(EntryRevision.entry_id.in_(ids))
         with self._sessions() as session:
@@ -459,7 +467,7 @@ class Ledger:
     def entry(self, entry_id: int) -> EntryHistory:
         """An entry's current revision and its whole history, oldest first."""
         with self._sessions() as session:
-            entry = session.get(Entry, entry_id)
+            entry = session.get(Entry, db.check_id(entry_id, "ID"))
             if entry is None:
                 raise NotFoundError(f"no entry with id {entry_id}")
             views = tuple(EntryView.of(r) for r in entry.revisions)
@@ -470,17 +478,21 @@ class Ledger:
         with self._sessions() as session:
             rev = session.scalar(
                 select(EntryRevision).where(
-                    EntryRevision.entry_id == entry_id, EntryRevision.revision == revision
+                    EntryRevision.entry_id == db.check_id(entry_id, "ID"),
+                    EntryRevision.revision == db.check_id(revision, "revision"),
                 )
             )
             if rev is None:
                 raise NotFoundError(f"entry {entry_id} has no revision {revision}")
             return EntryView.of(rev)
 
+    @db.retried
     def revise(self, entry_id: int, changes: Mapping[str, str], reason: str) -> EntryView:
         """Add a revision with `changes` applied (an empty value clears a cell).
 
-        The derived numbers are recomputed and validated as on import.
+        The derived numbers are recomputed and validated as on import. The current revision
+        is read, and the next number taken, inside the write transaction, so that concurrent
+        revisions of one entry each apply to the one before.
         """
         where = f"entry {entry_id}"
         if not reason.strip():
@@ -492,7 +504,25 @@ class Ledger:
                 raise InputError("not a column of an entry", field=name, path=where)
             if name in REQUIRED and not changes[name]:
                 raise InputError("a required value cannot be cleared", field=name, path=where)
-        current = self.entry(entry_id).current
+        with self.transaction() as session:
+            entry = session.get(Entry, db.check_id(entry_id, "ID"))
+            if entry is None:
+                raise NotFoundError(f"no entry with id {entry_id}")
+            current = EntryView.of(entry.revisions[-1])
+            row = self._revised_row(current, changes, where)
+            source = session.scalar(select(Source).where(Source.key == row.source))
+            if source is None:
+                raise InputError(f"no source with key {row.source!r}", field="source", path=where)
+            rev = self._add_revision(
+                session, entry_id, current.revision + 1, replace(row, row=0), source, reason.strip()
+            )
+            session.flush()
+            session.refresh(rev)
+            return EntryView.of(rev)
+
+    @staticmethod
+    def _revised_row(current: EntryView, changes: Mapping[str, str], where: str) -> SheetRow:
+        """The entry's cells with `changes` applied, validated and derived as on import."""
         cells = {**current.cells, **changes}
         cells = {k: v for k, v in cells.items() if v != ""}
         if "citation" in cells or "doi" in cells or "year" in cells:
@@ -507,13 +537,4 @@ class Ledger:
             raise error.located(path=where) from None
         if row.fingerprint == parse_row(current.cells).fingerprint:
             raise InputError("the changes leave the entry as it is", field="--set", path=where)
-        with self.transaction() as session:
-            source = session.scalar(select(Source).where(Source.key == row.source))
-            if source is None:
-                raise InputError(f"no source with key {row.source!r}", field="source", path=where)
-            rev = self._add_revision(
-                session, entry_id, current.revision + 1, replace(row, row=0), source, reason.strip()
-            )
-            session.flush()
-            session.refresh(rev)
-            return EntryView.of(rev)
+        return row

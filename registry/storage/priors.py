@@ -17,6 +17,7 @@ from sqlalchemy.orm import Session
 from registry import __version__
 from registry.caution import CAUTION
 from registry.errors import InputError, NotFoundError
+from registry.storage import db
 from registry.storage.ledger import Ledger
 from registry.storage.models import EntryRevision, PriorEntry, PriorVersion
 from registry.values.built import BuildResult
@@ -165,6 +166,7 @@ def _find(session: Session, label: str) -> PriorVersion:
     return row
 
 
+@db.retried
 def save_version(
     ledger: Ledger,
     name: str,
@@ -174,7 +176,8 @@ def save_version(
     uses: Sequence[Use],
 ) -> StoredPrior:
     """Store a build as the next version of `name`, unless the latest has the same digest
-    (then that version is returned, with `new` False)."""
+    (then that version is returned, with `new` False). The number is taken inside the write
+    transaction; a concurrent build that took it first makes this one run again."""
     with ledger.transaction() as session:
         latest = session.scalars(
             select(PriorVersion)
