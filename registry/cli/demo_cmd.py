@@ -44,8 +44,8 @@ def demo(
         db = str(Path(tempfile.mkdtemp(prefix="priorledger-demo-")) / "demo.db")
     elif "://" not in db:
         output_folder(Path(db).parent, "--db")
-    registry = ledger(db)
     folder = output_folder(out_dir or (Path(db).parent if "://" not in db else Path.cwd()), "--out")
+    registry = ledger(db)
     with err.status("running the demo: loading, pooling, building two priors"):
         run = run_demo(registry, folder)
     out.rule("priorledger demo — INVENTED scenario")

@@ -616,12 +616,17 @@ def derive(measure: str, reported: Mapping[str, float]) -> Derived:
         )
     values = _checked_columns(reported)
     form = _select_form(measure, frozenset(values))
-    return _finite(form.compute(measure, values), form)
+    return _finite(form, measure, values)
 
 
-def _finite(derived: Derived, form: _Form) -> Derived:
-    """Refuse what floating point cannot carry: a y or se that overflowed to inf or NaN, or
-    an se that underflowed to 0 (then the entry would claim infinite precision)."""
+def _finite(form: _Form, measure: str, values: Mapping[str, float]) -> Derived:
+    """The form's result, refusing what floating point cannot carry: a y or se that
+    overflowed to inf or NaN, or an se that underflowed to 0 (then the entry would claim
+    infinite precision)."""
+    try:
+        derived = form.compute(measure, values)
+    except OverflowError:
+        derived = Derived(math.inf, math.inf, "", "")
     if not (math.isfinite(derived.y) and math.isfinite(derived.se) and derived.se > 0):
         raise ConversionError(
             f"the numbers of '{form.label}' give y = {derived.y:g}, se = {derived.se:g}; "

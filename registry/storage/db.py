@@ -4,13 +4,14 @@ The location is `--db URL_OR_PATH`, else `PRIORLEDGER_DB`, else `./priorledger.d
 path is a SQLite file. Migrations are applied by `priorledger init` and on first use of an
 empty registry; a registry whose schema is older than this version is upgraded the same way.
 
-Many processes may write to one registry at once. On SQLite the file is in WAL mode (readers
-never wait for a writer), a writer waits up to `BUSY_SECONDS` for another's lock, and every
-write transaction starts with `BEGIN IMMEDIATE`, so writers queue at their start instead of
-failing when a read lock would have to become a write lock. On PostgreSQL, writers that race
-on a unique key or a serialization check are told so by the server. Either way `retried`
-runs the whole write again, so numbers (entry revisions, prior versions) are allocated inside
-the transaction that stores them and a race costs a retry, never a failure.
+Many processes may write to one registry at once. On SQLite the registry is put in WAL mode
+once it is known to be one (readers never wait for a writer), a writer waits up to
+`BUSY_SECONDS` for another's lock, and every write transaction starts with `BEGIN IMMEDIATE`,
+so writers queue at their start instead of failing when a read lock would have to become a
+write lock. On PostgreSQL, writers that race on a unique key or a serialization check are
+told so by the server. Either way `retried` runs the whole write again, so numbers (entry
+revisions, prior versions) are allocated inside the transaction that stores them and a race
+costs a retry, never a failure.
 """
 
 from __future__ import annotations
@@ -72,12 +73,24 @@ def _sqlite_connect(dbapi_connection, _record) -> None:  # type: ignore[no-untyp
     dbapi_connection.isolation_level = None
     cursor = dbapi_connection.cursor()
     cursor.execute("PRAGMA foreign_keys = ON")
-    try:
-        cursor.execute("PRAGMA journal_mode = WAL")
-    except Exception as error:  # a read-only registry keeps its journal mode
-        if not _sqlite_name(error).startswith("SQLITE_READONLY"):
-            raise
     cursor.close()
+
+
+def _write_ahead_log(engine: Engine) -> None:
+    """Put a SQLite registry in WAL mode (kept in the file), once it is known to be one: a
+    file that is not a registry is never changed."""
+    if engine.dialect.name != "sqlite":
+        return
+    connection = engine.raw_connection()
+    try:
+        cursor = connection.cursor()
+        if cursor.execute("PRAGMA journal_mode").fetchone()[0] != "wal":
+            cursor.execute("PRAGMA journal_mode = WAL")
+    except Exception as error:  # a read-only registry keeps its journal mode
+        if not _sqlite_name(getattr(error, "orig", error)).startswith("SQLITE_READONLY"):
+            raise
+    finally:
+        connection.close()
 
 
 def _sqlite_begin(connection) -> None:  # type: ignore[no-untyped-def]
@@ -144,7 +157,7 @@ def make_engine(url: str) -> Engine:
     """An engine for `url`; a URL that names no known database or driver is an InputError."""
     try:
         parsed = make_url(url)
-    except ArgumentError:
+    except (ArgumentError, ValueError):
         raise InputError("not a database URL or a file path", field="--db") from None
     shown = parsed.render_as_string(hide_password=True)
     sqlite = parsed.get_backend_name() == "sqlite"
@@ -223,6 +236,7 @@ def ensure_schema(engine: Engine) -> None:
     head = head_revision()
     current = current_revision(engine)
     if current == head:
+        _write_ahead_log(engine)
         return
     if current is not None and current not in {s.revision for s in _scripts().walk_revisions()}:
         raise InputError(
@@ -244,6 +258,7 @@ def ensure_schema(engine: Engine) -> None:
             )
         config.attributes["connection"] = connection
         command.upgrade(config, "head")
+    _write_ahead_log(engine)
 
 
 P = ParamSpec("P")

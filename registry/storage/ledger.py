@@ -286,7 +286,7 @@ class Ledger:
                 changed = True
             elif str(current) != str(value) and name != "citation":
                 raise InputError(
-                    f"source {key!r} already has {name} {current!r}, not {value!r}",
+                    f"source {key!r} already has {name} {current!r:.80}, not {value!r:.80}",
                     field=name,
                     row=row,
                     path=where,

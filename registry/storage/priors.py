@@ -156,7 +156,7 @@ def _find(session: Session, label: str) -> PriorVersion:
     name, version = parse_label(label)
     query = select(PriorVersion).where(PriorVersion.name == name)
     query = (
-        query.where(PriorVersion.version == version)
+        query.where(PriorVersion.version == db.check_id(version, "prior"))
         if version is not None
         else query.order_by(PriorVersion.version.desc())
     )
