@@ -17,7 +17,6 @@ import time
 from collections.abc import Sequence
 from pathlib import Path
 
-import pytest
 from sqlalchemy import func, select, text
 
 from registry.storage.ledger import Ledger
@@ -101,9 +100,11 @@ def assert_all_succeeded(results: list[subprocess.CompletedProcess[str]]) -> Non
 
 
 def test_concurrent_imports_hold_exactly_the_union(registry_url: str, tmp_path: Path) -> None:
-    """Round 0 also races on creating the registry; round 2 imports round 0's sheets again."""
-    for round_ in (0, 1, 0):
-        sheets = overlapping_sheets(tmp_path, round_)
+    """Round 0 also races on creating the registry; round 1 mixes new sheets with half of
+    round 0's again."""
+    rounds = [overlapping_sheets(tmp_path, 0)]
+    rounds.append(overlapping_sheets(tmp_path, 1)[::2] + rounds[0][1::2])
+    for sheets in rounds:
         results = run_all([command("import", s, "--db", registry_url) for s in sheets])
         assert_all_succeeded(results)
     ledger = Ledger.open(registry_url)
@@ -177,7 +178,7 @@ def test_concurrent_retractions_one_wins(registry_url: str, tmp_path: Path) -> N
     ledger.engine.dispose()
 
 
-KILL_AFTER = (0.8, 1.6, 2.4, 3.2)
+KILL_AFTER = (1.0, 2.0, 3.0)
 
 
 def _killed(args: list[str], delay: float) -> None:
@@ -217,11 +218,8 @@ def test_sigkill_during_build_leaves_whole_versions(registry_url: str, tmp_path:
     ledger.engine.dispose()
 
 
-@pytest.mark.parametrize("attempt", range(2))
-def test_same_sheet_twice_at_once_says_already_there(
-    registry_url: str, tmp_path: Path, attempt: int
-) -> None:
-    sheet = write_sheet(tmp_path / "same.csv", HEADER, *rows_of(attempt))
+def test_same_sheet_at_once_says_already_there(registry_url: str, tmp_path: Path) -> None:
+    sheet = write_sheet(tmp_path / "same.csv", HEADER, *rows_of(0))
     Ledger.open(registry_url).engine.dispose()
     results = run_all([command("import", sheet, "--db", registry_url)] * 4)
     assert_all_succeeded(results)

@@ -485,3 +485,21 @@ def test_bad_input_is_one_line_and_exit_2(cli, template: Path, tmp_path: Path, n
     assert "secret" not in result.stderr
     after = _snapshot(tmp_path)
     assert {k: v for k, v in after.items() if k in before} == before
+
+
+def test_demo_refuses_a_registry_with_other_content(cli, template: Path, tmp_path: Path) -> None:
+    registry = Path(shutil.copy(template, tmp_path / "lab.db"))
+    before = registry.read_bytes()
+    result = cli("demo", "--db", registry)
+    assert result.code == 2
+    assert len(result.stderr.strip().splitlines()) == 1
+    assert "more than the invented demo" in result.stderr
+    assert registry.read_bytes() == before
+
+
+def test_demo_never_overwrites_a_figure(cli, tmp_path: Path) -> None:
+    figure = write(tmp_path / "falls-programme-effect-forest.png", b"a figure of my own")
+    result = cli("demo", "--db", tmp_path / "demo.db")
+    assert result.code == 0, result.stderr
+    assert figure.read_bytes() == b"a figure of my own"
+    assert (tmp_path / "falls-programme-effect-forest-2.png").stat().st_size > 0
