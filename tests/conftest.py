@@ -110,3 +110,22 @@ def write_sheet(path: Path, header: list[str], *rows: list[object]) -> Path:
         writer.writerow(header)
         writer.writerows(rows)
     return path
+
+
+def simple_definition(
+    name: str, quantity: str, *, parameter: str = "log risk ratio", method: str = "common"
+) -> str:
+    """An invented prior definition with no discounting, for tests of commands and storage."""
+    return f"""name = "{name}"
+parameter = "{parameter} (invented)"
+target = "mean"
+[select]
+quantity = "{quantity}"
+[pool]
+method = "{method}"
+[discount]
+mechanism = "none"
+[output]
+unit_sd = 2.0
+ess_unit = "participants"
+"""

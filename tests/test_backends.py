@@ -9,7 +9,7 @@ from pathlib import Path
 
 import pytest
 
-from tests.conftest import PG_ENV, write_sheet
+from tests.conftest import PG_ENV, simple_definition, write_sheet
 
 HEADER = ["source", "quantity", "measure", "estimate", "lower", "upper"]
 # Invented rows.
@@ -18,19 +18,7 @@ ROWS = [
     ["t2005", "effect", "risk_ratio", 0.70, 0.50, 0.98],
     ["t2011", "effect", "risk_ratio", 0.95, 0.75, 1.20],
 ]
-DEFINITION = """name = "effect-prior"
-parameter = "log risk ratio (invented)"
-target = "mean"
-[select]
-quantity = "effect"
-[pool]
-method = "reml"
-[discount]
-mechanism = "none"
-[output]
-unit_sd = 2.0
-ess_unit = "participants"
-"""
+DEFINITION = simple_definition("effect-prior", "effect", method="reml")
 
 
 def _job(cli, db: str, folder: Path) -> dict:

@@ -21,23 +21,11 @@ from sqlalchemy import func, select, text
 
 from registry.storage.ledger import Ledger
 from registry.storage.models import Entry, EntryRevision, PriorEntry, PriorVersion
-from tests.conftest import write_sheet
+from tests.conftest import simple_definition, write_sheet
 
 PROCESSES = 8
 HEADER = ["source", "quantity", "measure", "estimate", "lower", "upper"]
-DEFINITION = """name = "race-prior"
-parameter = "log risk ratio, variant {k} (invented)"
-target = "mean"
-[select]
-quantity = "q0"
-[pool]
-method = "common"
-[discount]
-mechanism = "none"
-[output]
-unit_sd = 2.0
-ess_unit = "participants"
-"""
+DEFINITION = simple_definition("race-prior", "q0", parameter="log risk ratio, variant {k}")
 
 
 def command(*args: object) -> list[str]:

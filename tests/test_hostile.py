@@ -26,6 +26,7 @@ from registry.priors.definition import load_definition
 from registry.priors.ratings import DOMAINS, levels_for
 from registry.priors.store import build_prior
 from registry.storage.ledger import Ledger
+from tests.conftest import simple_definition
 
 HEADER = "source,quantity,measure,estimate,lower,upper,se,notes"
 GOOD_ROWS = [
@@ -35,19 +36,7 @@ GOOD_ROWS = [
 ]
 BIB = "@article{a2020,\n title = {Grünewald trial},\n journal = {J},\n year = {2020}\n}\n"
 RIS = "TY  - JOUR\nID  - d2019\nAU  - Ødegård, K\nTI  - A trial\nPY  - 2019\nER  - \n"
-DEFINITION = """name = "q-prior"
-parameter = "log risk ratio in the test (invented)"
-target = "mean"
-[select]
-quantity = "q"
-[pool]
-method = "common"
-[discount]
-mechanism = "none"
-[output]
-unit_sd = 2.0
-ess_unit = "participants"
-"""
+DEFINITION = simple_definition("q-prior", "q")
 # A line that cannot be UTF-8 in several single-byte encodings, and what they are.
 NON_UTF8 = {
     "latin-1": "Müller, Grünewald; Ødegård",
@@ -310,6 +299,15 @@ def folder(d: Path, name: str) -> Path:
     return d / name
 
 
+EMIT = ("emit", "q-prior", "--to", "stan")
+POOL = ("pool", "--quantity", "q")
+
+
+def writing(args: tuple[str, ...], option: str, target: Callable[[Path], Path]) -> Case:
+    """A command that writes a file given by `option`, pointed at `target`."""
+    return Case(lambda d, db: [*args, option, str(target(d)), "--db", str(db)])
+
+
 def path_cases() -> dict[str, Case]:
     def sheet(d: Path) -> str:
         return str(write(d / "ok.csv", sheet_text("z1,q,risk_ratio,0.9,0.7,1.1,,")))
@@ -324,52 +322,10 @@ def path_cases() -> dict[str, Case]:
         "sources-wrong-suffix": sources("refs.txt", BIB),
         "build-folder": Case(lambda d, db: ["build", str(folder(d, "f.toml")), "--db", str(db)]),
         "build-missing": command("build", "/no/such/def.toml"),
-        "emit-out-folder": Case(
-            lambda d, db: [
-                "emit",
-                "q-prior",
-                "--to",
-                "stan",
-                "--out",
-                str(folder(d, "o")),
-                "--db",
-                str(db),
-            ]
-        ),
-        "emit-out-missing-folder": Case(
-            lambda d, db: [
-                "emit",
-                "q-prior",
-                "--to",
-                "stan",
-                "--out",
-                str(d / "no" / "x.stan"),
-                "--db",
-                str(db),
-            ]
-        ),
-        "pool-plot-folder": Case(
-            lambda d, db: [
-                "pool",
-                "--quantity",
-                "q",
-                "--plot",
-                str(folder(d, "p.png")),
-                "--db",
-                str(db),
-            ]
-        ),
-        "pool-plot-missing-folder": Case(
-            lambda d, db: [
-                "pool",
-                "--quantity",
-                "q",
-                "--plot",
-                str(d / "no" / "p.png"),
-                "--db",
-                str(db),
-            ]
-        ),
+        "emit-out-folder": writing(EMIT, "--out", lambda d: folder(d, "o")),
+        "emit-out-missing-folder": writing(EMIT, "--out", lambda d: d / "no" / "x.stan"),
+        "pool-plot-folder": writing(POOL, "--plot", lambda d: folder(d, "p.png")),
+        "pool-plot-missing-folder": writing(POOL, "--plot", lambda d: d / "no" / "p.png"),
         "demo-out-is-a-file": Case(
             lambda d, db: ["demo", "--db", str(d / "demo" / "d.db"), "--out", sheet(d)]
         ),
