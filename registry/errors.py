@@ -71,3 +71,7 @@ class CheckFailed(LedgerError):
     """A check the user asked for ran and found a problem (exit code 1)."""
 
     exit_code = 1
+
+
+class ConflictError(LedgerError):
+    """A write kept losing races to other writers and was given up; nothing was written."""

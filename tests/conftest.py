@@ -5,6 +5,8 @@ from __future__ import annotations
 import os
 import subprocess
 import sys
+import uuid
+from collections.abc import Iterator
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -19,9 +21,47 @@ def db_path(tmp_path: Path) -> Path:
     return tmp_path / "registry.db"
 
 
+# A PostgreSQL server to run the back-end tests against as well, as a SQLAlchemy URL whose
+# role may create databases (`.ci/run` starts one on loopback and sets it); unset, those
+# tests are skipped.
+PG_ENV = "PRIORLEDGER_TEST_PG"
+
+
+def fresh_postgres_database(base: str) -> Iterator[str]:
+    """A new, empty database on the server of `base` for one test; dropped afterwards."""
+    from sqlalchemy import create_engine
+    from sqlalchemy.engine import make_url
+
+    name = f"priorledger_test_{uuid.uuid4().hex[:12]}"
+    admin = create_engine(base, isolation_level="AUTOCOMMIT")
+    with admin.connect() as connection:
+        connection.exec_driver_sql(f'CREATE DATABASE "{name}"')
+    try:
+        yield make_url(base).set(database=name).render_as_string(hide_password=False)
+    finally:
+        with admin.connect() as connection:
+            connection.exec_driver_sql(f'DROP DATABASE IF EXISTS "{name}" WITH (FORCE)')
+        admin.dispose()
+
+
+@pytest.fixture(params=["sqlite", "postgresql"])
+def registry_url(request: pytest.FixtureRequest, tmp_path: Path) -> Iterator[str]:
+    """A fresh registry location on each back end: a SQLite file, and a new PostgreSQL
+    database when PRIORLEDGER_TEST_PG names a server (else that case is skipped)."""
+    if request.param == "sqlite":
+        yield str(tmp_path / "registry.db")
+        return
+    base = os.environ.get(PG_ENV)
+    if not base:
+        pytest.skip(f"{PG_ENV} is not set: no PostgreSQL server to test against")
+    yield from fresh_postgres_database(base)
+
+
 @pytest.fixture
-def ledger(db_path: Path) -> Ledger:
-    return Ledger.open(str(db_path))
+def ledger(registry_url: str) -> Iterator[Ledger]:
+    registry = Ledger.open(registry_url)
+    yield registry
+    registry.engine.dispose()
 
 
 @dataclass
@@ -70,3 +110,22 @@ def write_sheet(path: Path, header: list[str], *rows: list[object]) -> Path:
         writer.writerow(header)
         writer.writerows(rows)
     return path
+
+
+def simple_definition(
+    name: str, quantity: str, *, parameter: str = "log risk ratio", method: str = "common"
+) -> str:
+    """An invented prior definition with no discounting, for tests of commands and storage."""
+    return f"""name = "{name}"
+parameter = "{parameter} (invented)"
+target = "mean"
+[select]
+quantity = "{quantity}"
+[pool]
+method = "{method}"
+[discount]
+mechanism = "none"
+[output]
+unit_sd = 2.0
+ess_unit = "participants"
+"""

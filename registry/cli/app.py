@@ -10,6 +10,7 @@ from __future__ import annotations
 import os
 import sys
 import time
+import warnings
 from pathlib import Path
 from typing import Annotated
 
@@ -141,12 +142,20 @@ def _write_crash_report(error: Exception) -> str:
     return f"the full traceback is in {path}"
 
 
+def _warning_line(message: Warning | str, *_where: object, **_file: object) -> None:
+    """A warning of a library underneath as one line on stderr (Python's own form adds the
+    file, line and source text on a second line). Warnings that do not matter to the user
+    are silenced where they arise (for example openpyxl's, in registry/evidence/reading.py)."""
+    print(f"warning: {_one_line(str(message))}", file=sys.stderr)
+
+
 def main() -> None:
     """Entry point: run the command and turn every way it can fail into one line and a code.
 
     Exit codes (the README's contract): 0 success; 1 a check that was asked for failed;
     2 bad input or usage; 70 a bug (an unexpected exception); 130 interrupted.
     """
+    warnings.showwarning = _warning_line
     try:
         command = typer.main.get_command(app)
         _person_metavars(command)

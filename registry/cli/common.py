@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import json
 import sys
+from pathlib import Path
 from typing import TYPE_CHECKING, Annotated, Any
 
 import typer
@@ -16,6 +17,8 @@ import typer
 # Rich is imported where something is drawn: `--help` starts without it.
 if TYPE_CHECKING:
     from rich.table import Table
+
+from registry.errors import InputError
 
 DbOption = Annotated[
     str | None,
@@ -34,6 +37,15 @@ UserOption = Annotated[
         envvar="PRIORLEDGER_USER",
         metavar="NAME",
         help="Who makes this change (default: PRIORLEDGER_USER, else your login name).",
+        show_default=False,
+    ),
+]
+EncodingOption = Annotated[
+    str | None,
+    typer.Option(
+        "--encoding",
+        metavar="ENCODING",
+        help="The file's text encoding if it is not UTF-8 (for example latin-1, cp1252).",
         show_default=False,
     ),
 ]
@@ -61,6 +73,24 @@ class _OnFirstUse:
 
 out = _OnFirstUse()
 err = _OnFirstUse(stderr=True)
+
+
+def output_file(path: Path, option: str) -> Path:
+    """A file to write, refused (InputError) when it is a folder or its folder is missing."""
+    if path.is_dir():
+        raise InputError(f"{path} is a folder; give a file name", field=option)
+    if not path.parent.is_dir():
+        raise InputError(f"folder {path.parent} does not exist", field=option)
+    return path
+
+
+def output_folder(path: Path, option: str) -> Path:
+    """A folder to write into, made if missing; refused when a file is in the way."""
+    try:
+        path.mkdir(parents=True, exist_ok=True)
+    except OSError as error:
+        raise InputError(f"cannot make folder {path}: {error.strerror}", field=option) from None
+    return path
 
 
 def print_json(doc: Any) -> None:

@@ -9,7 +9,7 @@ import typer
 
 from registry.caution import CAUTION
 from registry.cli.check_cmds import render_prediction, render_sensitivity, render_update
-from registry.cli.common import err, ledger, out, print_verbatim
+from registry.cli.common import err, ledger, out, output_folder, print_verbatim
 from registry.cli.pool_cmd import render
 from registry.cli.prior_cmds import show, trace_tree
 from registry.cli.registry_cmds import entries_table
@@ -45,10 +45,9 @@ def demo(
 
         db = str(Path(tempfile.mkdtemp(prefix="priorledger-demo-")) / "demo.db")
     elif "://" not in db:
-        Path(db).parent.mkdir(parents=True, exist_ok=True)
+        output_folder(Path(db).parent, "--db")
+    folder = output_folder(out_dir or (Path(db).parent if "://" not in db else Path.cwd()), "--out")
     registry = ledger(db)
-    folder = out_dir or (Path(db).parent if "://" not in db else Path.cwd())
-    folder.mkdir(parents=True, exist_ok=True)
     with err.status(
         "running the demo: loading, pooling, building two priors, checking one (about a minute)"
     ):

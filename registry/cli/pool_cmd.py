@@ -18,6 +18,7 @@ from registry.cli.common import (
     err,
     ledger,
     out,
+    output_file,
     print_json,
 )
 
@@ -85,6 +86,8 @@ def pool(
 
     Example: priorledger pool --quantity falls-rate-control-12m --method bayes --likelihood exact
     """
+    if plot is not None:
+        output_file(plot, "--plot")
     from registry.priors.selection import pool_entries, repeated_studies, without_retracted
 
     entries, left_out = without_retracted(

@@ -17,6 +17,7 @@ from registry.cli.common import (
     make_table,
     number,
     out,
+    output_file,
     print_json,
     print_verbatim,
 )
@@ -276,6 +277,8 @@ def emit(
     from registry.emit import emit as emit_code
     from registry.priors.store import get_prior
 
+    if out_file is not None:
+        output_file(out_file, "--out")
     prior = get_prior(ledger(db), label).prior
     for reason in prior.stale:
         err.print(f"warning: {prior.label} is stale: {reason}; rebuild it before use")
@@ -283,5 +286,5 @@ def emit(
     if out_file is None:
         print_verbatim(code)
     else:
-        out_file.write_text(code)
+        out_file.write_text(code, encoding="utf-8")
         err.print(f"written to {out_file}")

@@ -12,6 +12,7 @@ from registry.cli.common import (
     CreateSourcesOption,
     DbOption,
     DecimalCommaOption,
+    EncodingOption,
     JsonOption,
     LimitOption,
     MeasureOption,
@@ -71,6 +72,7 @@ def import_sheet(
     ] = False,
     create_sources: CreateSourcesOption = False,
     user: UserOption = None,
+    encoding: EncodingOption = None,
     db: DbOption = None,
     as_json: JsonOption = False,
 ) -> None:
@@ -88,6 +90,7 @@ def import_sheet(
         allow_revert=allow_revert,
         create_sources=create_sources,
         user=user,
+        encoding=encoding,
     )
     if as_json:
         print_json(report.to_dict())
@@ -152,6 +155,7 @@ def sources_import(
         ),
     ] = None,
     user: UserOption = None,
+    encoding: EncodingOption = None,
     db: DbOption = None,
     as_json: JsonOption = False,
 ) -> None:
@@ -159,7 +163,9 @@ def sources_import(
 
     Example: priorledger sources import refs.bib
     """
-    report = ledger(db).import_sources(file, update=update, reason=reason, user=user)
+    report = ledger(db).import_sources(
+        file, update=update, reason=reason, user=user, encoding=encoding
+    )
     if as_json:
         print_json(report.to_dict())
         return

@@ -16,6 +16,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 from registry.errors import InputError
+from registry.evidence.reading import read_text
 
 
 @dataclass(frozen=True)
@@ -68,7 +69,10 @@ def _read_bibtex(path: Path, text: str) -> list[SourceRecord]:
     from bibtexparser.middlewares import LatexDecodingMiddleware
     from bibtexparser.model import DuplicateBlockKeyBlock
 
-    library = bibtexparser.parse_string(text, append_middleware=[LatexDecodingMiddleware()])
+    try:
+        library = bibtexparser.parse_string(text, append_middleware=[LatexDecodingMiddleware()])
+    except Exception as error:  # the parser's own errors on malformed input, whatever they are
+        raise InputError(f"cannot parse the BibTeX file: {error}", path=str(path)) from None
     for block in library.failed_blocks:
         if isinstance(block, DuplicateBlockKeyBlock):
             raise InputError(
@@ -83,6 +87,9 @@ def _read_bibtex(path: Path, text: str) -> list[SourceRecord]:
         )
     records = []
     for entry in library.entries:
+        if not entry.key.strip():
+            line = "" if entry.start_line is None else f" on line {entry.start_line + 1}"
+            raise InputError(f"the BibTeX entry{line} has no citation key", path=str(path))
         fields = {k.lower(): _clean(f.value) for k, f in entry.fields_dict.items()}
         authors = [a.strip() for a in (fields.get("author") or "").split(" and ") if a.strip()]
         year = _year(fields.get("year"), path, entry.key)
@@ -137,16 +144,16 @@ def _read_ris(path: Path, text: str) -> list[SourceRecord]:
     return records
 
 
-def read_bibliography(path: str | Path) -> list[SourceRecord]:
+def read_bibliography(path: str | Path, *, encoding: str | None = None) -> list[SourceRecord]:
     """Source records from a .bib or .ris file; a key given twice is an error."""
     path = Path(path)
     if not path.is_file():
         raise InputError("no such file", path=str(path))
-    text = path.read_text(encoding="utf-8-sig")
     readers = {".bib": _read_bibtex, ".ris": _read_ris}
     reader = readers.get(path.suffix.lower())
     if reader is None:
         raise InputError("a bibliography must be .bib (BibTeX) or .ris (RIS)", path=str(path))
+    text = read_text(path, encoding)
     records = reader(path, text)
     keys = [r.key for r in records]
     repeated = sorted({k for k in keys if keys.count(k) > 1})

@@ -667,7 +667,7 @@ def derive(
             "only a p-value may be reported as an inequality (<0.001)", field=unbounded[0]
         )
     values = _checked_columns(reported)
-    derived = _select_form(measure, frozenset(values)).compute(measure, values)
+    derived = _finite(_select_form(measure, frozenset(values)), measure, values)
     return _p_bound(derived, values["p"]) if "p" in bounds else derived
 
 
@@ -687,3 +687,21 @@ def _p_bound(derived: Derived, bound: float) -> Derived:
             *derived.corrections,
         ),
     )
+
+
+def _finite(form: _Form, measure: str, values: Mapping[str, float]) -> Derived:
+    """The form's result, refusing what floating point cannot carry: a y or se that
+    overflowed to inf or NaN, or an se that underflowed to 0 (then the entry would claim
+    infinite precision)."""
+    try:
+        derived = form.compute(measure, values)
+    except OverflowError:
+        derived = Derived(math.inf, math.inf, "", "")
+    if not (math.isfinite(derived.y) and math.isfinite(derived.se) and derived.se > 0):
+        raise ConversionError(
+            f"the numbers of '{form.label}' give y = {derived.y:g}, se = {derived.se:g}; "
+            "a usable entry needs both finite and se > 0 (are the numbers far too large or "
+            "too small?)",
+            field=form.fields[0],
+        )
+    return derived

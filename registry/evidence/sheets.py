@@ -16,16 +16,15 @@ study, quantity and measure: a CSV sheet and its XLSX copy give the same identit
 
 from __future__ import annotations
 
-import csv
 import hashlib
 import json
 import re
-from collections.abc import Iterator
 from dataclasses import dataclass, field, replace
 from pathlib import Path
 
 from registry.errors import ConversionError, InputError
 from registry.evidence.convert import NUMERIC_FIELDS, Derived, derive
+from registry.evidence.reading import read_grid
 from registry.values.measures import MEASURES
 
 REQUIRED = ("source", "quantity", "measure")
@@ -98,51 +97,16 @@ class SheetRow:
         }
 
 
-def _cell_text(value: object, decimal_comma: bool) -> str:
-    if value is None:
-        return ""
-    if isinstance(value, float) and value.is_integer():
-        return str(int(value))
-    if isinstance(value, float) and decimal_comma:
-        return repr(value).replace(".", ",")  # a number cell, written as the sheet's text is
-    return str(value).strip()
-
-
-def _read_xlsx(path: Path, decimal_comma: bool) -> Iterator[list[str]]:
-    from openpyxl import load_workbook
-
-    workbook = load_workbook(path, read_only=True, data_only=True)
-    try:
-        for values in workbook.worksheets[0].iter_rows(values_only=True):
-            yield [_cell_text(v, decimal_comma) for v in values]
-    finally:
-        workbook.close()
-
-
-def _read_csv(path: Path) -> list[list[str]]:
-    with path.open(newline="", encoding="utf-8-sig") as handle:
-        first = handle.readline()
-        handle.seek(0)
-        # Column names hold neither character, so the header shows the delimiter.
-        delimiter = ";" if ";" in first and "," not in first else ","
-        return [[c.strip() for c in line] for line in csv.reader(handle, delimiter=delimiter)]
-
-
 def read_cells(
     path: Path,
     *,
     columns: frozenset[str] = COLUMNS,
     required: tuple[str, ...] = REQUIRED,
     decimal_comma: bool = False,
+    encoding: str | None = None,
 ) -> list[dict[str, str]]:
     """The sheet's data rows as column -> text, empty cells left out."""
-    suffix = path.suffix.lower()
-    if suffix == ".csv":
-        grid = _read_csv(path)
-    elif suffix in (".xlsx", ".xlsm"):
-        grid = list(_read_xlsx(path, decimal_comma))
-    else:
-        raise InputError("a sheet must be .csv or .xlsx", path=str(path))
+    grid = read_grid(path, encoding, decimal_comma=decimal_comma)
     if not grid:
         raise InputError("the sheet is empty", path=str(path))
     header = [h.strip().lower() for h in grid[0]]
@@ -285,7 +249,9 @@ def parse_row(cells: dict[str, str], *, decimal_comma: bool = False) -> SheetRow
     )
 
 
-def read_sheet(path: str | Path, *, decimal_comma: bool = False) -> list[SheetRow]:
+def read_sheet(
+    path: str | Path, *, decimal_comma: bool = False, encoding: str | None = None
+) -> list[SheetRow]:
     """Every row of a sheet, validated; the first bad cell raises with file, row and column.
 
     A `row_key` given on two rows is an error naming the second.
@@ -295,7 +261,9 @@ def read_sheet(path: str | Path, *, decimal_comma: bool = False) -> list[SheetRo
         raise InputError("no such file", path=str(path))
     rows: list[SheetRow] = []
     keys: dict[str, int] = {}
-    for number, cells in enumerate(read_cells(path, decimal_comma=decimal_comma), start=2):
+    for number, cells in enumerate(
+        read_cells(path, decimal_comma=decimal_comma, encoding=encoding), start=2
+    ):
         if not cells:
             continue
         try:

@@ -55,6 +55,7 @@ Errors name the key and its line: `FILE, line N, 'discount.robust_weight': must 
 from __future__ import annotations
 
 import json
+import math
 import re
 import tomllib
 from collections.abc import Callable, Mapping
@@ -63,8 +64,10 @@ from pathlib import Path
 from typing import Any
 
 from registry.errors import InputError
+from registry.evidence.reading import read_text
 from registry.evidence.sheets import CONTEXT_FIELDS
 from registry.priors.ratings import DOMAINS, DiscountMapping, levels_for
+from registry.storage.db import MAX_ID
 
 NAME = re.compile(r"[a-z0-9][a-z0-9_-]*")
 METHODS = ("common", "dl", "pm", "reml", "ml", "bayes")
@@ -89,7 +92,7 @@ def _text(v: Any) -> bool:
 
 def _number(lo: float, hi: float, *, open_lo: bool = False) -> Callable[[Any], bool]:
     def check(v: Any) -> bool:
-        ok = isinstance(v, int | float) and not isinstance(v, bool)
+        ok = isinstance(v, int | float) and not isinstance(v, bool) and math.isfinite(v)
         return ok and (lo < v if open_lo else lo <= v) and v <= hi
 
     return check
@@ -103,8 +106,13 @@ def _strings(v: Any) -> bool:
     return isinstance(v, list) and all(_text(x) for x in v)
 
 
+def _id(x: Any) -> bool:
+    """An entry id: a whole number that a database integer can hold."""
+    return isinstance(x, int) and not isinstance(x, bool) and 0 < x <= MAX_ID
+
+
 def _ids(v: Any) -> bool:
-    return isinstance(v, list) and all(isinstance(x, int) and x > 0 for x in v)
+    return isinstance(v, list) and all(_id(x) for x in v)
 
 
 SETTINGS: dict[str, Setting] = {
@@ -127,7 +135,7 @@ SETTINGS: dict[str, Setting] = {
     ),
     "select.studies": Setting(
         {},
-        lambda v: isinstance(v, dict) and all(isinstance(x, int) for x in v.values()),
+        lambda v: isinstance(v, dict) and all(_id(x) for x in v.values()),
         "a table of study key = entry id",
     ),
     "pool.method": Setting("bayes", lambda v: v in METHODS, f"one of {', '.join(METHODS)}"),
@@ -159,10 +167,10 @@ SETTINGS: dict[str, Setting] = {
         lambda v: (
             isinstance(v, list)
             and len(v) == 2
-            and all(isinstance(x, int | float) for x in v)
+            and all(isinstance(x, int | float) and math.isfinite(x) for x in v)
             and v[0] < v[1]
         ),
-        "[low, high] with low < high",
+        "[low, high], finite numbers with low < high",
     ),
 }
 REQUIRED = ("name", "parameter", "select.quantity")
@@ -265,7 +273,7 @@ def _check_rules(values: dict[str, Any]) -> None:
                 _check_rating(rule[domain], f"{where}.{domain}", domain)
     for entry_id, ratings in values["override"].items():
         where = f"override.{entry_id}"
-        if not entry_id.isdigit() or not isinstance(ratings, dict):
+        if not (entry_id.isdigit() and _id(int(entry_id))) or not isinstance(ratings, dict):
             raise InputError("must be [override.ENTRY_ID] with domain ratings", field=where)
         for domain, rating in ratings.items():
             if domain not in DOMAINS:
@@ -317,7 +325,7 @@ def load_definition(path: str | Path) -> Definition:
     path = Path(path)
     if not path.is_file():
         raise InputError("no such file", path=str(path))
-    return parse_definition(path.read_text(encoding="utf-8"), str(path))
+    return parse_definition(read_text(path), str(path))
 
 
 def definition_from_canonical(doc: Mapping[str, Any]) -> Definition:

@@ -194,6 +194,12 @@ class DiscountMapping:
                 raise InputError(
                     f"unknown rating domain {domain!r}; one of {', '.join(DOMAINS)}", field=domain
                 )
+            if not isinstance(by_level, Mapping):
+                raise InputError(
+                    f"{domain}: must be a table of levels, such as [discount.mapping.{domain}."
+                    f"{levels_for(domain)[-1]}], got {by_level!r}",
+                    field=domain,
+                )
             for level, spec in by_level.items():
                 if level not in merged[domain]:
                     raise InputError(
@@ -208,6 +214,12 @@ class DiscountMapping:
 def _level_from_dict(
     domain: str, level: str, spec: Mapping[str, Any], old: LevelDiscount
 ) -> LevelDiscount:
+    if not isinstance(spec, Mapping):
+        raise InputError(
+            f"{domain} {level}: must be a table such as {{ power = 0.5, bias_sd = 0.2 }}, "
+            f"got {spec!r}",
+            field=domain,
+        )
     unknown = set(spec) - {"power", "bias_sd", "bias_var", "shift"}
     if unknown:
         raise InputError(
@@ -222,7 +234,7 @@ def _level_from_dict(
         bias_var = float(spec.get("bias_var", old.bias_var)) if bias_sd is None else None
         power = float(spec.get("power", old.power))
         shift = float(spec.get("shift", old.shift))
-    except (TypeError, ValueError) as exc:
+    except (TypeError, ValueError, OverflowError) as exc:
         raise InputError(
             f"{domain} {level}: every value must be a number ({exc})", field=domain
         ) from exc

@@ -423,6 +423,7 @@ class Ledger:
     def __init__(self, engine: Engine) -> None:
         self.engine = engine
         self._sessions = sessionmaker(engine, expire_on_commit=False)
+        self._writes = sessionmaker(db.writer(engine), expire_on_commit=False)
 
     @classmethod
     def open(cls, location: str | None = None) -> Ledger:
@@ -440,10 +441,11 @@ class Ledger:
         return self._sessions()
 
     def transaction(self, *, commit: bool = True):  # type: ignore[no-untyped-def]
-        return db.transaction(self._sessions, commit=commit)
+        return db.transaction(self._writes, commit=commit)
 
     # sources -------------------------------------------------------------------------------
 
+    @db.retried
     def import_sources(
         self,
         path: str | Path,
@@ -451,6 +453,7 @@ class Ledger:
         update: bool = False,
         reason: str | None = None,
         user: str | None = None,
+        encoding: str | None = None,
     ) -> SourceImportReport:
         """Add a bibliography's references; fill in fields a stub source lacks. The import and
         new sources are recorded under `user` (`registry.storage.db.who`).
@@ -460,7 +463,7 @@ class Ledger:
         source revision (`reason`, else "updated from FILE"), the old values kept.
         """
         path = Path(path)
-        records = read_bibliography(path)
+        records = read_bibliography(path, encoding=encoding)
         added, completed, updated, unchanged = [], [], [], 0
         why = (reason or "").strip() or f"updated from {path.name}"
         by = db.who(user)
@@ -514,7 +517,7 @@ class Ledger:
                 changed = True
             elif str(current) != str(value) and name != "citation":
                 raise InputError(
-                    f"source {key!r} already has {name} {current!r}, not {value!r}; "
+                    f"source {key!r} already has {name} {current!r:.80}, not {value!r:.80}; "
                     "`sources edit` or `sources import --update` records a revision",
                     field=name,
                     row=row,
@@ -575,22 +578,14 @@ class Ledger:
                 )
             ]
 
-    def sources(self, *, limit: int | None = None, offset: int = 0) -> list[SourceView]:
-        """Sources by key, `limit` of them (all if None) after the first `offset`; each with
-        the number of entries that have a revision citing it."""
-        query = sources_query().offset(offset)
-        if limit is not None:
-            query = query.limit(limit)
-        with self._sessions() as session:
-            return [SourceView.of(s, n) for s, n in session.execute(query)]
-
+    @db.retried
     def retract(self, key: str, reason: str, *, user: str | None = None) -> SourceView:
         """Flag a source as retracted; nothing is deleted and priors built on it say so.
         The retraction is recorded under `user` (`registry.storage.db.who`)."""
         if not reason.strip():
             raise InputError("a retraction needs a reason", field="--reason")
         with self.transaction() as session:
-            source = session.scalar(select(Source).where(Source.key == key))
+            source = session.scalar(select(Source).where(Source.key == key).with_for_update())
             if source is None:
                 raise NotFoundError(f"no source with key {key!r}")
             if source.retracted:
@@ -613,6 +608,7 @@ class Ledger:
         allow_revert: bool = False,
         create_sources: bool = False,
         user: str | None = None,
+        encoding: str | None = None,
     ) -> ImportReport:
         """Import an extraction sheet, every row or none: one bad row writes nothing. The
         import, its entries and new sources are recorded under `user` (`db.who`).
@@ -625,7 +621,7 @@ class Ledger:
         the registry is an error unless `create_sources`.
         """
         path = Path(path)
-        rows = read_sheet(path, decimal_comma=decimal_comma)
+        rows = read_sheet(path, decimal_comma=decimal_comma, encoding=encoding)
         return self._import_rows(
             path,
             rows,
@@ -663,6 +659,7 @@ class Ledger:
         )
         return report, elicitation
 
+    @db.retried
     def _import_rows(
         self,
         path: Path,
@@ -871,6 +868,8 @@ class Ledger:
 
         Entries from retracted sources are left out unless `include_retracted` is True.
         """
+        if filters.get("ids"):
+            filters["ids"] = [db.check_id(i, "--id") for i in filters["ids"]]
         with self._sessions() as session:
             query = entries_query(
                 **filters,
@@ -896,7 +895,7 @@ class Ledger:
     def entry(self, entry_id: int) -> EntryHistory:
         """An entry's current revision and its whole history, oldest first."""
         with self._sessions() as session:
-            entry = session.get(Entry, entry_id)
+            entry = session.get(Entry, db.check_id(entry_id, "ID"))
             if entry is None:
                 raise NotFoundError(f"no entry with id {entry_id}")
             views = tuple(EntryView.of(r) for r in entry.revisions)
@@ -904,7 +903,7 @@ class Ledger:
             return EntryHistory(views[-1], views, origin, entry.row_key)
 
     def revision(self, entry_id: int, revision: int) -> EntryView:
-        return self.revisions([(entry_id, revision)])[0]
+        return self.revisions([(db.check_id(entry_id, "ID"), db.check_id(revision, "revision"))])[0]
 
     def revisions(self, wanted: Sequence[tuple[int, int]]) -> list[EntryView]:
         """The given (entry id, revision) pairs, in the order given, read in one query."""
@@ -918,6 +917,7 @@ class Ledger:
                 raise NotFoundError(f"entry {entry_id} has no revision {number}")
         return [found[p] for p in pairs]
 
+    @db.retried
     def revise(
         self,
         entry_id: int,
@@ -929,7 +929,9 @@ class Ledger:
         """Add a revision with `changes` applied (an empty value clears a cell), recorded under
         `user` (`registry.storage.db.who`).
 
-        The derived numbers are recomputed and validated as on import.
+        The derived numbers are recomputed and validated as on import. The current revision
+        is read, and the next number taken, inside the write transaction, so that concurrent
+        revisions of one entry each apply to the one before.
         """
         where = f"entry {entry_id}"
         if not reason.strip():
@@ -941,28 +943,18 @@ class Ledger:
                 raise InputError("not a column of an entry", field=name, path=where)
             if name in REQUIRED and not changes[name]:
                 raise InputError("a required value cannot be cleared", field=name, path=where)
-        current = self.entry(entry_id).current
-        if current.context.get("design") == "expert" and "x_expert" in current.extra:
-            raise InputError(
-                "an elicited entry is fitted from its judgement sheet: correct the sheet and "
-                "run `elicit` again",
-                path=where,
-            )
-        cells = {**current.cells, **changes}
-        cells = {k: v for k, v in cells.items() if v != ""}
-        if "citation" in cells or "doi" in cells or "year" in cells:
-            raise InputError(
-                "sources are corrected by `sources edit`, not on an entry",
-                field=next(k for k in ("citation", "doi", "year") if k in cells),
-                path=where,
-            )
-        try:
-            row = parse_row(cells)
-        except InputError as error:
-            raise error.located(path=where) from None
-        if row.content == parse_row(current.cells).content:
-            raise InputError("the changes leave the entry as it is", field="--set", path=where)
         with self.transaction() as session:
+            entry = session.get(Entry, db.check_id(entry_id, "ID"))
+            if entry is None:
+                raise NotFoundError(f"no entry with id {entry_id}")
+            current = EntryView.of(entry.revisions[-1])
+            if current.context.get("design") == "expert" and "x_expert" in current.extra:
+                raise InputError(
+                    "an elicited entry is fitted from its judgement sheet: correct the sheet "
+                    "and run `elicit` again",
+                    path=where,
+                )
+            row = self._revised_row(current, changes, where)
             source = session.scalar(select(Source).where(Source.key == row.source))
             if source is None:
                 raise InputError(f"no source with key {row.source!r}", field="source", path=where)
@@ -978,3 +970,22 @@ class Ledger:
             session.flush()
             session.refresh(rev)
             return EntryView.of(rev)
+
+    @staticmethod
+    def _revised_row(current: EntryView, changes: Mapping[str, str], where: str) -> SheetRow:
+        """The entry's cells with `changes` applied, validated and derived as on import."""
+        cells = {**current.cells, **changes}
+        cells = {k: v for k, v in cells.items() if v != ""}
+        if "citation" in cells or "doi" in cells or "year" in cells:
+            raise InputError(
+                "sources are corrected by `sources edit`, not on an entry",
+                field=next(k for k in ("citation", "doi", "year") if k in cells),
+                path=where,
+            )
+        try:
+            row = parse_row(cells)
+        except InputError as error:
+            raise error.located(path=where) from None
+        if row.content == parse_row(current.cells).content:
+            raise InputError("the changes leave the entry as it is", field="--set", path=where)
+        return row

@@ -17,7 +17,7 @@ from sqlalchemy.orm import Session, selectinload
 from registry import __version__
 from registry.caution import CAUTION
 from registry.errors import InputError, NotFoundError
-from registry.storage.db import who
+from registry.storage import db
 from registry.storage.ledger import Ledger
 from registry.storage.models import EntryRevision, PriorEntry, PriorVersion
 from registry.values.built import BuildResult
@@ -172,7 +172,7 @@ def _find(session: Session, label: str) -> PriorVersion:
     name, version = parse_label(label)
     query = select(PriorVersion).where(PriorVersion.name == name).options(_WITH_USES)
     query = (
-        query.where(PriorVersion.version == version)
+        query.where(PriorVersion.version == db.check_id(version, "prior"))
         if version is not None
         else query.order_by(PriorVersion.version.desc())
     )
@@ -182,6 +182,7 @@ def _find(session: Session, label: str) -> PriorVersion:
     return row
 
 
+@db.retried
 def save_version(
     ledger: Ledger,
     name: str,
@@ -193,7 +194,9 @@ def save_version(
     user: str | None = None,
 ) -> StoredPrior:
     """Store a build as the next version of `name`, recorded under `user` (`db.who`), unless
-    the latest has the same digest (then that version is returned, with `new` False)."""
+    the latest has the same digest (then that version is returned, with `new` False). The
+    number is taken inside the write transaction; a concurrent build that took it first makes
+    this one run again."""
     with ledger.transaction() as session:
         latest = session.scalars(
             select(PriorVersion)
@@ -209,7 +212,7 @@ def save_version(
             definition=thaw(definition),
             result=result.to_dict(),
             software_version=__version__,
-            created_by=who(user),
+            created_by=db.who(user),
         )
         session.add(row)
         session.flush()
