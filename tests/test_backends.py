@@ -25,7 +25,7 @@ def _job(cli, db: str, folder: Path) -> dict:
     sheet = write_sheet(folder / "sheet.csv", HEADER, *ROWS)
     definition = folder / "def.toml"
     definition.write_text(DEFINITION)
-    assert cli("import", sheet, "--db", db).code == 0
+    assert cli("import", sheet, "--create-sources", "--db", db).code == 0
     first = json.loads(cli("build", definition, "--json", "--db", db).stdout)
     assert cli("verify", "effect-prior", "--db", db).code == 0
     revised = cli("revise", "2", "--set", "upper=0.99", "--reason", "typo", "--db", db)

@@ -93,7 +93,9 @@ def test_concurrent_imports_hold_exactly_the_union(registry_url: str, tmp_path: 
     rounds = [overlapping_sheets(tmp_path, 0)]
     rounds.append(overlapping_sheets(tmp_path, 1)[::2] + rounds[0][1::2])
     for sheets in rounds:
-        results = run_all([command("import", s, "--db", registry_url) for s in sheets])
+        results = run_all(
+            [command("import", s, "--create-sources", "--db", registry_url) for s in sheets]
+        )
         assert_all_succeeded(results)
     ledger = Ledger.open(registry_url)
     got = sorted((e.source, e.quantity, float(e.reported["estimate"])) for e in ledger.entries())
@@ -106,7 +108,9 @@ def test_concurrent_imports_hold_exactly_the_union(registry_url: str, tmp_path: 
 
 def _loaded(registry_url: str, tmp_path: Path) -> Ledger:
     ledger = Ledger.open(registry_url)
-    ledger.import_sheet(write_sheet(tmp_path / "base.csv", HEADER, *rows_of(0)[:4]))
+    ledger.import_sheet(
+        write_sheet(tmp_path / "base.csv", HEADER, *rows_of(0)[:4]), create_sources=True
+    )
     return ledger
 
 
@@ -181,7 +185,7 @@ def test_sigkill_during_import_leaves_all_or_nothing(registry_url: str, tmp_path
     rows = [[f"k{i % 50}", "big", "risk_ratio", 0.5 + i / 1e4, 0.3, 0.9] for i in range(3000)]
     sheet = write_sheet(tmp_path / "big.csv", HEADER, *rows)
     for delay in KILL_AFTER:
-        _killed(command("import", sheet, "--db", registry_url), delay)
+        _killed(command("import", sheet, "--create-sources", "--db", registry_url), delay)
         ledger = Ledger.open(registry_url)
         assert len(ledger.entries()) in (0, len(rows))
         assert_sound(ledger)
@@ -209,6 +213,6 @@ def test_sigkill_during_build_leaves_whole_versions(registry_url: str, tmp_path:
 def test_same_sheet_at_once_says_already_there(registry_url: str, tmp_path: Path) -> None:
     sheet = write_sheet(tmp_path / "same.csv", HEADER, *rows_of(0))
     Ledger.open(registry_url).engine.dispose()
-    results = run_all([command("import", sheet, "--db", registry_url)] * 4)
+    results = run_all([command("import", sheet, "--create-sources", "--db", registry_url)] * 4)
     assert_all_succeeded(results)
     assert sum("already in the registry" in r.stderr for r in results) == 3

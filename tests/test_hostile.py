@@ -65,7 +65,16 @@ def sheet_text(*rows: str, header: str = HEADER) -> str:
 
 
 def imported(name: str, data: str | bytes, *extra: str) -> Case:
-    return Case(lambda d, db: ["import", str(write(d / name, data)), *extra, "--db", str(db)])
+    return Case(
+        lambda d, db: [
+            "import",
+            str(write(d / name, data)),
+            "--create-sources",
+            *extra,
+            "--db",
+            str(db),
+        ]
+    )
 
 
 def sources(name: str, data: str | bytes, *extra: str) -> Case:
@@ -413,7 +422,7 @@ def template(tmp_path_factory: pytest.TempPathFactory) -> Path:
     path = folder / "registry.db"
     ledger = Ledger.open(str(path))
     ledger.import_sources(write(folder / "refs.bib", BIB))
-    ledger.import_sheet(write(folder / "sheet.csv", sheet_text(*GOOD_ROWS)))
+    ledger.import_sheet(write(folder / "sheet.csv", sheet_text(*GOOD_ROWS)), create_sources=True)
     build_prior(ledger, load_definition(write(folder / "def.toml", DEFINITION)))
     ledger.engine.dispose()
     return path

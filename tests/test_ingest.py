@@ -174,12 +174,15 @@ def test_dry_run_json_lists_each_kind_of_row(cli, db_path: Path, tmp_path: Path)
     assert doc["rows_revise"] == [{"row": 2, "entry": 1, "revision": 3, "changes": changes}]
 
 
-def test_unknown_source_is_an_error_unless_asked(cli, db_path: Path, tmp_path: Path) -> None:
+def test_an_unknown_source_is_never_created_silently(cli, db_path: Path, tmp_path: Path) -> None:
+    """By default a new key creates a source and stderr names it; --known-sources refuses."""
     sheet = write_sheet(tmp_path / "s.csv", HEADER, *ROWS)
-    refused = cli("import", sheet, "--db", db_path)
+    refused = cli("import", sheet, "--known-sources", "--db", db_path)
     assert refused.code == 2 and "row 2" in refused.stderr and "'source'" in refused.stderr
-    assert "--create-sources" in refused.stderr
-    assert cli("import", sheet, "--create-sources", "--db", db_path).code == 0
+    assert "--known-sources" in refused.stderr
+    created = cli("import", sheet, "--db", db_path)
+    assert created.code == 0 and "created" in created.stderr and "no bibliography" in created.stderr
+    assert ROWS[0][1] in created.stderr
 
 
 def test_a_registry_from_before_row_identity_keeps_its_rows(tmp_path: Path) -> None:

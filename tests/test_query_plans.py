@@ -18,6 +18,12 @@ from registry.storage.priors import latest_revisions_query
 from tests.conftest import write_sheet
 
 
+@pytest.fixture
+def ledger(tmp_path: Path) -> Ledger:
+    """A SQLite registry: the plans read here are SQLite's EXPLAIN QUERY PLAN."""
+    return Ledger.open(str(tmp_path / "plans.db"))
+
+
 def plan(ledger: Ledger, query) -> list[str]:  # type: ignore[no-untyped-def]
     sql = str(query.compile(ledger.engine, compile_kwargs={"literal_binds": True}))
     with ledger.engine.connect() as connection:

@@ -125,7 +125,12 @@ DecimalCommaOption = Annotated[
     bool, typer.Option("--decimal-comma", help="Numbers are written with a decimal comma (0,15).")
 ]
 CreateSourcesOption = Annotated[
-    bool, typer.Option("--create-sources", help="Create a bare source for an unknown source key.")
+    bool,
+    typer.Option(
+        "--create-sources/--known-sources",
+        help="A source key not in the registry creates a source from the sheet's citation, "
+        "doi and year (named on stderr), or, with --known-sources, is an error.",
+    ),
 ]
 SetOption = Annotated[
     list[str],

@@ -45,7 +45,7 @@ def elicit(
         bool, typer.Option("--dry-run", help="Fit and report; write nothing.")
     ] = False,
     decimal_comma: DecimalCommaOption = False,
-    create_sources: CreateSourcesOption = False,
+    create_sources: CreateSourcesOption = True,
     db: DbOption = None,
     as_json: JsonOption = False,
 ) -> None:

@@ -70,7 +70,7 @@ def import_sheet(
             "--allow-revert", help="Let a row equal to an older revision become the newest."
         ),
     ] = False,
-    create_sources: CreateSourcesOption = False,
+    create_sources: CreateSourcesOption = True,
     user: UserOption = None,
     encoding: EncodingOption = None,
     db: DbOption = None,

@@ -209,14 +209,18 @@ class ImportReport:
             text += f"{add} {counts['add']} entries, {revise} {counts['revise']}"
         else:
             text += "nothing added"
-        text += f", {counts['present']} already in the registry"
+        if counts["present"]:
+            text += f", {counts['present']} already in the registry"
         if counts["not_reverted"]:
             text += (
                 f", {counts['not_reverted']} rows match an older revision and are left at the "
                 "newer one (--allow-revert to bring them back)"
             )
         if self.new_sources:
-            text += f", {len(self.new_sources)} new sources"
+            text += (
+                f"; created {len(self.new_sources)} sources from the sheet, with no bibliography "
+                f"record: {', '.join(self.new_sources)} (complete them with `sources import`)"
+            )
         return text
 
     def to_dict(self) -> dict[str, Any]:
@@ -578,6 +582,15 @@ class Ledger:
                 )
             ]
 
+    def sources(self, *, limit: int | None = None, offset: int = 0) -> list[SourceView]:
+        """Sources by key, `limit` of them (all if None) after the first `offset`; each with
+        the number of entries that have a revision citing it."""
+        query = sources_query().offset(offset)
+        if limit is not None:
+            query = query.limit(limit)
+        with self._sessions() as session:
+            return [SourceView.of(s, n) for s, n in session.execute(query)]
+
     @db.retried
     def retract(self, key: str, reason: str, *, user: str | None = None) -> SourceView:
         """Flag a source as retracted; nothing is deleted and priors built on it say so.
@@ -606,7 +619,7 @@ class Ledger:
         decimal_comma: bool = False,
         reason: str | None = None,
         allow_revert: bool = False,
-        create_sources: bool = False,
+        create_sources: bool = True,
         user: str | None = None,
         encoding: str | None = None,
     ) -> ImportReport:
@@ -641,7 +654,7 @@ class Ledger:
         pool: str | None = None,
         dry_run: bool = False,
         decimal_comma: bool = False,
-        create_sources: bool = False,
+        create_sources: bool = True,
         user: str | None = None,
     ) -> tuple[ImportReport, Elicitation]:
         """Fit a judgement sheet (`evidence.elicit`) and store one entry per expert and
@@ -669,7 +682,7 @@ class Ledger:
         dry_run: bool,
         reason: str | None = None,
         allow_revert: bool = False,
-        create_sources: bool = False,
+        create_sources: bool = True,
         user: str | None = None,
     ) -> ImportReport:
         why = (reason or "").strip()
@@ -807,7 +820,7 @@ class Ledger:
             if not create:
                 raise InputError(
                     f"no source with key {row.source!r}: import its reference with "
-                    "`sources import` first, or give --create-sources",
+                    "`sources import` first (--known-sources refuses unknown keys)",
                     field="source",
                     row=row.row,
                     path=where,
