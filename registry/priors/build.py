@@ -22,7 +22,7 @@ from __future__ import annotations
 import hashlib
 import json
 import math
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
 from functools import cached_property
 from typing import Any
@@ -296,7 +296,9 @@ def _mixture_of(family: str, natural: bool) -> FitFunction:
     return fit
 
 
-def _ratios_text(ratios: dict[str, float | None]) -> str:
+def _ratios_text(ratios: Mapping[str, float | None]) -> str:
+    if not ratios:
+        return "not compared (no exact predictive)"
     return ", ".join(f"{k} {'none' if v is None else format(v, '.4g')}" for k, v in ratios.items())
 
 
@@ -686,6 +688,14 @@ def construct(
         notes.append(
             f"robust mixture (Schmidli et al. 2014): a vague component of weight "
             f"{run.robust['weight']:g}, {run.robust['description']}"
+        )
+    fit = run.fitted.fit
+    if fit.get("meets_bounds"):  # a miss is stated by its warning instead
+        notes.append(
+            f"mixture approximation: {fit['components']} component(s) within the bounds; "
+            f"largest quantile error {fit['quantile_relative']:.3g} of the sd, variance ratio "
+            f"{fit['variance_ratio']:.4g}, ESS over the exact predictive's: "
+            f"{_ratios_text(fit['ess_ratio'])}"
         )
     notes.extend(run.fitted.warnings)
     tau2 = run.pooled.tau2 or 0.0
