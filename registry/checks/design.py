@@ -118,6 +118,12 @@ class Endpoint:
     contrast: Contrast
     pmf: Callable[[Any, Any, float], Any] | None = None
     top: Callable[[Any, float], int] | None = None
+    truncated: bool = False  # the outcomes are cut at a tail bound (counts with no maximum)
+
+    @property
+    def counts(self) -> bool:
+        """Outcomes are counts, enumerated exactly (else a normal estimate)."""
+        return self.pmf is not None
 
     def options(self) -> str:
         return " and ".join(_option(s) for s in self.sizes if s)
@@ -139,6 +145,7 @@ ENDPOINTS: dict[str, Endpoint] = {
         _LOG_RATIO,
         _poisson_pmf,
         _poisson_top,
+        truncated=True,
     ),
     "normal": Endpoint(
         "normal",
@@ -681,7 +688,7 @@ def evaluate_design(prior: Prior, spec: DesignSpec, *, progress: Progress = _qui
         raise InputError("a two-arm design has no reference value", field="--reference")
     if not two_arm and reference is None:
         null = measure_row(prior.measure).null if prior.measure else None
-        if endpoint.likelihood != "normal" or null is None:
+        if endpoint.counts or null is None:
             raise InputError(
                 f"give {_option(endpoint.sizes[1])} for two arms, or --reference for one arm"
                 if endpoint.sizes[1]
@@ -744,7 +751,7 @@ def evaluate_design(prior: Prior, spec: DesignSpec, *, progress: Progress = _qui
         "treatment_prior": None,
         "without_borrowing": None,
     }
-    if endpoint.likelihood == "normal":
+    if not endpoint.counts:
         boundary = float(reference) + sign * spec.margin
         engine: Any = _Normal(prior.components, sizes[0], boundary, sign)
         design["without_borrowing"] = "a flat prior: theta | y ~ N(y, se²)"
@@ -815,14 +822,14 @@ def evaluate_design(prior: Prior, spec: DesignSpec, *, progress: Progress = _qui
         "name": "exact",
         "how": (
             "normal tails beyond the cut-off y*"
-            if endpoint.likelihood == "normal"
+            if not endpoint.counts
             else "every outcome enumerated once, weighted by each scenario's "
             f"{endpoint.likelihood} probabilities"
         ),
         "quadrature_error": engine.quadrature_error,
         "grid_points": getattr(engine, "grid_points", None),
         "truncation": {"tail_bound": POISSON_TAIL, "largest_omitted": omitted}
-        if endpoint.likelihood == "poisson"
+        if endpoint.truncated
         else None,
     }
 

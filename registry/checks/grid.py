@@ -16,7 +16,6 @@ halving the spacing, common practice for the trapezoid rule).
 
 from __future__ import annotations
 
-import math
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -33,28 +32,14 @@ def log_likelihood(study: Study, phi: Any) -> Any:
     """log p(result | phi) in full (constants kept, so that components of different
     families can be compared)."""
     import numpy as np
-    from scipy import special, stats
 
-    phi = np.asarray(phi, dtype=float)
-    x, size = study.result, study.size
-    if study.likelihood == "binomial":
-        log_c = special.gammaln(size + 1) - special.gammaln(x + 1) - special.gammaln(size - x + 1)
-        return log_c - x * np.logaddexp(0.0, -phi) - (size - x) * np.logaddexp(0.0, phi)
-    if study.likelihood == "poisson":
-        return x * (phi + math.log(size)) - size * np.exp(phi) - special.gammaln(x + 1)
-    return stats.norm.logpdf(x, phi, size)
+    return study.observation.log_likelihood(study.result, study.size, np.asarray(phi, dtype=float))
 
 
 def likelihood_window(study: Study) -> tuple[float, float]:
     """Centre and width of the likelihood in phi (its maximum, and 1/sqrt(information) there,
     with half an event added so that zero counts have a finite window)."""
-    x, size = study.result, study.size
-    if study.likelihood == "binomial":
-        p = (x + 0.5) / (size + 1.0)
-        return math.log(p / (1.0 - p)), 1.0 / math.sqrt((size + 1.0) * p * (1.0 - p))
-    if study.likelihood == "poisson":
-        return math.log((x + 0.5) / size), 1.0 / math.sqrt(x + 0.5)
-    return float(x), float(size)
+    return study.observation.window(study.result, study.size)
 
 
 def quantile_points(dist: Family, points: int) -> Any:

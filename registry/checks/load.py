@@ -44,7 +44,7 @@ def plausible_range(stored: StoredPrior, study: Study) -> tuple[float, float] | 
     if bounds is None:
         return None
     lo, hi = (float(b) for b in bounds)
-    if study.likelihood != "normal":
+    if study.observation.counts:
         return lo * study.size, hi * study.size
     scale = measure(stored.prior.measure).scale
     return (

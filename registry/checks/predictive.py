@@ -30,19 +30,17 @@ TAIL = 1e-13
 MAX_COUNT = 2_000_000
 QUANTILES = (0.025, 0.5, 0.975)
 EXACT = "exact"
-_NATURAL_SUPPORT = {"binomial": "unit", "poisson": "positive"}
 
 
 def _count_pmf(prior: Prior, study: Study, points: int) -> tuple[Any, Any, str]:
     """k = 0..kmax and the mixture's probabilities; how each component's were computed."""
     import numpy as np
-    from scipy import stats
 
     from registry.values.families import from_canonical
 
     numerical = [c for c in prior.components if c.dist.conjugate != study.likelihood]
     grids = {id(c): Grid.around([c.dist], None, points) for c in numerical}
-    if study.likelihood == "binomial":
+    if study.observation.bounded:
         kmax = int(study.size)
     else:
         tops = [
@@ -51,7 +49,7 @@ def _count_pmf(prior: Prior, study: Study, points: int) -> tuple[Any, Any, str]:
             if c not in numerical
         ]
         tops += [
-            float(stats.poisson.ppf(1 - TAIL, study.size * math.exp(g.phi[-1])))
+            study.observation.quantile(1 - TAIL, study.size, float(g.phi[-1]))
             for g in grids.values()
         ]
         kmax = max(tops)
@@ -71,13 +69,10 @@ def _count_pmf(prior: Prior, study: Study, points: int) -> tuple[Any, Any, str]:
         g = grids[id(c)]
         mass = g.probabilities(g.log_density(c.dist))
         # phi is the analysis scale: logit of the probability, log of the rate
-        theta = from_canonical(_NATURAL_SUPPORT[study.likelihood], g.phi)
+        theta = from_canonical(study.observation.natural_support, g.phi)
         for start in range(0, kmax + 1, 20_000):
             block = k[start : start + 20_000]
-            if study.likelihood == "binomial":
-                table = stats.binom.pmf(block[None, :], int(study.size), theta[:, None])
-            else:
-                table = stats.poisson.pmf(block[None, :], study.size * theta[:, None])
+            table = study.observation.pmf(block[None, :], study.size, theta[:, None])
             pmf[start : start + 20_000] += c.weight * (mass @ table)
     method = (
         EXACT
@@ -164,14 +159,14 @@ class _EstimatePart:
         return stats.norm.pdf(y[:, None], self.phi[None, :], se) @ self.mass
 
 
-def _estimate_part(component: Any, se: float, points: int) -> _EstimatePart:
+def _estimate_part(component: Any, study: Study, points: int) -> _EstimatePart:
     """Normal components in closed form; others on their grid. Moments of the parameter on the
     analysis scale: scipy's for real-valued families (inf or nan where they do not exist),
     else the grid's."""
     import numpy as np
 
-    dist = component.dist
-    if dist.conjugate == "normal":
+    dist, se = component.dist, study.size
+    if dist.conjugate == study.likelihood:
         return _EstimatePart(component.weight, dist.mean(), dist.var(), dist.predictive(se))
     g = Grid.around([dist], None, points)
     mass = g.probabilities(g.log_density(dist))
@@ -233,9 +228,11 @@ class EstimatePredictive:
 
 
 def _predictive(prior: Prior, study: Study, points: int) -> CountPredictive | EstimatePredictive:
-    if study.likelihood == "normal":
-        parts = tuple(_estimate_part(c, study.size, points) for c in prior.components)
-        numerical = sorted({c.family for c in prior.components if c.dist.conjugate != "normal"})
+    if not study.observation.counts:
+        parts = tuple(_estimate_part(c, study, points) for c in prior.components)
+        numerical = sorted(
+            {c.family for c in prior.components if c.dist.conjugate != study.likelihood}
+        )
         method = (
             "closed form: normal, N(m, s² + S²) per component"
             if not numerical
@@ -245,11 +242,7 @@ def _predictive(prior: Prior, study: Study, points: int) -> CountPredictive | Es
         return EstimatePredictive(study, parts, method)
     k, pmf, method = _count_pmf(prior, study, points)
     if method == EXACT:
-        method = (
-            "exact: a mixture of beta-binomials"
-            if study.likelihood == "binomial"
-            else "exact: a mixture of negative binomials"
-        )
+        method = f"exact: a mixture of {study.observation.exact_predictive}"
     return CountPredictive(study, k, pmf, method)
 
 

@@ -11,6 +11,7 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass
 
+from registry.checks.observations import OBSERVATIONS, Observation
 from registry.errors import InputError
 from registry.values.measures import measure
 
@@ -53,6 +54,10 @@ class Study:
     def terms(self) -> Terms:
         return TERMS[self.likelihood]
 
+    @property
+    def observation(self) -> Observation:
+        return OBSERVATIONS[self.likelihood]
+
     def to_dict(self) -> dict[str, float | None]:
         t = self.terms
         doc: dict[str, float | None] = {t.size_option.lstrip("-"): self.size}
@@ -87,7 +92,7 @@ def _whole(value: float, option: str, *, least: int) -> float:
 def _check_size(terms: Terms, size: float | None) -> float:
     if size is None:
         raise InputError(f"give the study's size as {terms.size_option}", field=terms.size_option)
-    if terms.likelihood == "binomial":
+    if OBSERVATIONS[terms.likelihood].bounded:  # a number of participants
         return _whole(size, terms.size_option, least=1)
     if not (math.isfinite(size) and size > 0):
         raise InputError(f"must be greater than 0, got {size:g}", field=terms.size_option)
@@ -115,11 +120,11 @@ def observed(measure_name: str, **options: float | None) -> Study:
         raise InputError(
             f"give the study's result as {terms.result_option}", field=terms.result_option
         )
-    if terms.likelihood == "normal":
+    if not OBSERVATIONS[terms.likelihood].counts:
         if not math.isfinite(result):
             raise InputError(f"must be a finite number, got {result}", field="--estimate")
-        return Study("normal", size, float(result))
+        return Study(terms.likelihood, size, float(result))
     events = _whole(result, "--events", least=0)
-    if terms.likelihood == "binomial" and events > size:
+    if OBSERVATIONS[terms.likelihood].bounded and events > size:
         raise InputError(f"events ({events:g}) cannot exceed n ({size:g})", field="--events")
     return Study(terms.likelihood, size, events)

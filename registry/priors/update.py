@@ -75,10 +75,11 @@ def _expit(x: float) -> float:
 # recorded: one participant (binomial, Fisher information p(1-p) for logit p), one expected
 # event (Poisson; the information about log lambda in exposure E is lambda E, so one expected
 # event gives information 1), one observation of sd unit_sd (normal data).
+_ONE_OBSERVATION = "one observation of the unit sd"
 _ONE_UNIT: dict[str, tuple[Callable[[float, float | None], float], str]] = {
     "binomial": (lambda m, _sd: 1.0 / math.sqrt(_expit(m) * _expit(-m)), "one participant"),
     "poisson": (lambda _m, _sd: 1.0, "one expected event"),
-    "normal": (lambda _m, sd: float(sd), "one observation of the unit sd"),
+    "normal": (lambda _m, sd: float(sd), _ONE_OBSERVATION),
 }
 
 
@@ -137,13 +138,13 @@ def vague_component(
     natural = _NATURAL_DEFAULTS.get(informative.components[0].family)
     if natural is not None:
         return natural(mean)
-    if likelihood == "normal" and unit_sd is None:
+    sd_of, unit = _ONE_UNIT[likelihood]
+    if unit_sd is None and unit == _ONE_OBSERVATION:
         raise InputError(
             "the robust component on this scale is one observation of the unit sd; give "
             "output.unit_sd, or discount.robust_component as FAMILY:PARAMS",
             field="output.unit_sd",
         )
-    sd_of, unit = _ONE_UNIT[likelihood]
     sd = sd_of(mean, unit_sd)
     return Vague(
         Component.of(Normal(mean, sd)),

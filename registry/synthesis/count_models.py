@@ -346,7 +346,7 @@ def fit_counts(
         raise InputError("events must be whole numbers >= 0", field="events")
     kind.check(y, n)
     tp, mp = resolve_priors(tau_prior, mu_prior)
-    if mp.family == "flat" and not kind.proper_with_flat_mu(y, n):
+    if mp.is_flat and not kind.proper_with_flat_mu(y, n):
         raise InputError(
             "with these counts a flat mu prior gives an improper posterior; "
             "give a normal mu prior such as normal:0,10",

@@ -133,6 +133,11 @@ class MuPrior:
             )
         object.__setattr__(self, "params", params)
 
+    @property
+    def is_flat(self) -> bool:
+        """The improper uniform prior (no parameters), as opposed to N(mean, sd²)."""
+        return not self.params
+
     @classmethod
     def parse(cls, text: str) -> MuPrior:
         """Read 'flat' or 'normal:0,10'."""

@@ -45,13 +45,13 @@ def normal_conditional(
     big_w = w.sum(axis=1)
     wy = w @ y
     sum_log_v = np.log(v).sum(axis=1)
-    if mu_prior.family == "normal":
+    if not mu_prior.is_flat:
         m0, s0 = mu_prior.params
         big_w = big_w + 1 / s0**2
         wy = wy + m0 / s0**2
     m = wy / big_w
     resid = w @ (y * y) - 2 * m * wy + m * m * w.sum(axis=1)
-    if mu_prior.family == "normal":
+    if not mu_prior.is_flat:
         resid = resid + (m0 * m0 - 2 * m * m0 + m * m) / s0**2
     log_marg = -0.5 * sum_log_v - 0.5 * np.log(big_w) - 0.5 * resid
     return log_marg, m, 1.0 / big_w
