@@ -6,8 +6,6 @@ from collections.abc import Callable
 from pathlib import Path
 from typing import Annotated, Any
 
-import typer
-
 from registry.caution import CAUTION
 from registry.cli.common import (
     DbOption,
@@ -16,23 +14,19 @@ from registry.cli.common import (
     ledger,
     make_table,
     number,
+    option,
     out,
     print_json,
 )
 from registry.cli.prior_cmds import Label
 from registry.errors import CheckFailed, InputError
 
-
-def _opt(name: str, metavar: str, text: str) -> Any:
-    return typer.Option(name, metavar=metavar, help=text, show_default=False)
-
-
-N = Annotated[float | None, _opt("--n", "N", "Participants (a proportion's prior).")]
-Exposure = Annotated[float | None, _opt("--exposure", "E", "Exposure (a rate's prior).")]
-Se = Annotated[float | None, _opt("--se", "S", "Standard error on the analysis scale.")]
-Events = Annotated[float | None, _opt("--events", "X", "Events observed.")]
-Estimate = Annotated[float | None, _opt("--estimate", "Y", "Estimate on the analysis scale.")]
-Plot = Annotated[Path | None, _opt("--plot", "FILE", "Write a figure (.png, .pdf or .svg).")]
+N = Annotated[float | None, option("--n", "N", "Participants (a proportion's prior).")]
+Exposure = Annotated[float | None, option("--exposure", "E", "Exposure (a rate's prior).")]
+Se = Annotated[float | None, option("--se", "S", "Standard error on the analysis scale.")]
+Events = Annotated[float | None, option("--events", "X", "Events observed.")]
+Estimate = Annotated[float | None, option("--estimate", "Y", "Estimate on the analysis scale.")]
+Plot = Annotated[Path | None, option("--plot", "FILE", "Write a figure (.png, .pdf or .svg).")]
 
 
 def _checked(plot: Path | None) -> Path | None:
@@ -117,7 +111,7 @@ def update(
     se: Se = None,
     conflict_level: Annotated[
         float | None,
-        _opt("--conflict-level", "A", "Exit 1 when the conflict tail probability is below A."),
+        option("--conflict-level", "A", "Exit 1 when the conflict tail probability is below A."),
     ] = None,
     plot: Plot = None,
     db: DbOption = None,
@@ -179,24 +173,24 @@ def _values(text: str | None) -> list[float] | None:
 
 def sensitivity(
     label: Label,
-    over: Annotated[str, _opt("--over", "power|robust_weight", "The setting to vary.")],
+    over: Annotated[str, option("--over", "power|robust_weight", "The setting to vary.")],
     events: Events = None,
     n: N = None,
     exposure: Exposure = None,
     estimate: Estimate = None,
     se: Se = None,
-    values: Annotated[str | None, _opt("--values", "V1,V2,...", "Values of the setting.")] = None,
+    values: Annotated[str | None, option("--values", "V1,V2,...", "Values of the setting.")] = None,
     above: Annotated[
-        float | None, _opt("--probability-above", "X", "Posterior P(theta > X), prior's scale.")
+        float | None, option("--probability-above", "X", "Posterior P(theta > X), prior's scale.")
     ] = None,
     below: Annotated[
-        float | None, _opt("--probability-below", "X", "Posterior P(theta < X), prior's scale.")
+        float | None, option("--probability-below", "X", "Posterior P(theta < X), prior's scale.")
     ] = None,
     decide: Annotated[
-        float | None, _opt("--decide", "C", "Find where the probability crosses C.")
+        float | None, option("--decide", "C", "Find where the probability crosses C.")
     ] = None,
     tolerance: Annotated[
-        float, _opt("--tolerance", "T", "Tolerance of the tipping point (default 0.001).")
+        float, option("--tolerance", "T", "Tolerance of the tipping point (default 0.001).")
     ] = 1e-3,
     plot: Plot = None,
     db: DbOption = None,

@@ -181,3 +181,8 @@ def page(rows: list[Any], limit: int, offset: int, what: str) -> tuple[list[Any]
         f"(--offset {following}, or --limit 0 for all)"
     )
     return rows[:limit], following
+
+
+def option(name: str, metavar: str, text: str) -> Any:
+    """A named option with a metavar a person would write, and no default shown."""
+    return typer.Option(name, metavar=metavar, help=text, show_default=False)

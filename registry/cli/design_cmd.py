@@ -16,6 +16,7 @@ from registry.cli.common import (
     ledger,
     make_table,
     number,
+    option,
     out,
     print_json,
 )
@@ -51,33 +52,29 @@ class _Bar:
             self.bar.stop()
 
 
-def _option(name: str, metavar: str, text: str) -> Any:
-    return typer.Option(name, metavar=metavar, help=text, show_default=False)
-
-
 def design(
     label: Annotated[
         str, typer.Argument(metavar="NAME[@N]", help="A prior, latest version by default.")
     ],
     control_n: Annotated[
-        int | None, _option("--control-n", "N", "Binary endpoint: participants in the control arm.")
+        int | None, option("--control-n", "N", "Binary endpoint: participants in the control arm.")
     ] = None,
     treatment_n: Annotated[
-        int | None, _option("--treatment-n", "N", "Binary endpoint: treatment arm participants.")
+        int | None, option("--treatment-n", "N", "Binary endpoint: treatment arm participants.")
     ] = None,
     control_exposure: Annotated[
-        float | None, _option("--control-exposure", "E", "Count endpoint: control arm exposure.")
+        float | None, option("--control-exposure", "E", "Count endpoint: control arm exposure.")
     ] = None,
     treatment_exposure: Annotated[
         float | None,
-        _option("--treatment-exposure", "E", "Count endpoint: treatment arm exposure."),
+        option("--treatment-exposure", "E", "Count endpoint: treatment arm exposure."),
     ] = None,
     se: Annotated[
-        float | None, _option("--se", "SE", "Normal endpoint: the planned standard error.")
+        float | None, option("--se", "SE", "Normal endpoint: the planned standard error.")
     ] = None,
     reference: Annotated[
         float | None,
-        _option("--reference", "VALUE", "One arm: the fixed value to beat (natural scale)."),
+        option("--reference", "VALUE", "One arm: the fixed value to beat (natural scale)."),
     ] = None,
     margin: Annotated[
         float,
@@ -96,11 +93,11 @@ def design(
     ] = "higher",
     futility: Annotated[
         float | None,
-        _option("--futility", "F", "Also report P(futility): that posterior probability < F."),
+        option("--futility", "F", "Also report P(futility): that posterior probability < F."),
     ] = None,
     truth: Annotated[
         str | None,
-        _option(
+        option(
             "--truth",
             "LO:HI:K",
             "True control values (natural scale); default around the prior, with conflict on "
@@ -109,9 +106,7 @@ def design(
     ] = None,
     effect: Annotated[
         list[float] | None,
-        _option(
-            "--effect", "D", "True effect on the contrast's scale (repeatable; 0 is the null)."
-        ),
+        option("--effect", "D", "True effect on the contrast's scale (repeatable; 0 is the null)."),
     ] = None,
     treatment_prior: Annotated[
         str,
@@ -123,7 +118,7 @@ def design(
     ] = "auto",
     alpha: Annotated[
         float | None,
-        _option("--alpha", "A", "Calibrate the threshold so that the type I error is <= A."),
+        option("--alpha", "A", "Calibrate the threshold so that the type I error is <= A."),
     ] = None,
     calibrate: Annotated[
         str,
@@ -134,7 +129,7 @@ def design(
     ] = "central",
     plot: Annotated[
         Path | None,
-        _option("--plot", "FILE", "Draw success against the truth (.png, .pdf or .svg)."),
+        option("--plot", "FILE", "Draw success against the truth (.png, .pdf or .svg)."),
     ] = None,
     db: DbOption = None,
     as_json: JsonOption = False,
