@@ -21,7 +21,7 @@ su postgres -c "'$pg_bin/initdb' -D '$pg_data/db' -U postgres --auth=scram-sha-2
 su postgres -c "'$pg_bin/pg_ctl' -D '$pg_data/db' -l '$pg_data/log' -w \
   -o '-c listen_addresses=127.0.0.1 -c port=$pg_port -c unix_socket_directories=$pg_data' start" >/dev/null
 # shellcheck disable=SC2064  # expand now: the paths are fixed for this run
-trap "su postgres -c \"'$pg_bin/pg_ctl' -D '$pg_data/db' -m fast stop\" >/dev/null" EXIT
+trap "cd / && su postgres -c \"'$pg_bin/pg_ctl' -D '$pg_data/db' -m fast stop\" >/dev/null" EXIT
 export PGPASSWORD=ci-superuser-secret
 "$pg_bin/psql" -q -h 127.0.0.1 -p "$pg_port" -U postgres -d postgres \
   -c "CREATE ROLE priorledger LOGIN CREATEDB PASSWORD 'priorledger-ci'" \
