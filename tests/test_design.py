@@ -17,7 +17,7 @@ from registry.checks.design import THRESHOLDS, DesignSpec, evaluate_design
 from registry.errors import InputError
 from registry.values.prior import Component, Prior
 from tests.conftest import write_sheet
-from tests.test_frequentist import BCG_COUNTS
+from tests.test_frequentist import BCG_COUNTS, write_bcg_bibliography
 from tests.test_trust import BCG_CONTROL
 
 FLAT = Prior(
@@ -185,14 +185,7 @@ def test_bad_specifications_are_input_errors() -> None:
 @pytest.fixture
 def stored(cli, tmp_path: Path) -> Path:
     db = tmp_path / "bcg.db"
-    bib = tmp_path / "bcg.bib"
-    bib.write_text(
-        "".join(
-            f"@article{{bcg{i:02d},\n title = {{BCG trial {i}}},\n"
-            f" journal = {{JAMA}},\n year = {{1994}}}}\n"
-            for i in range(len(BCG_COUNTS))
-        )
-    )
+    bib = write_bcg_bibliography(tmp_path / "bcg.bib")
     assert cli("sources", "import", bib, "--db", db).code == 0
     rows = [
         [f"bcg{i:02d}", "bcg-control-risk", "proportion", c, c + d]

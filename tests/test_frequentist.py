@@ -53,6 +53,18 @@ BCG_COUNTS = [
 ]
 
 
+def write_bcg_bibliography(path):  # type: ignore[no-untyped-def]
+    """One BibTeX record per trial (key bcgNN), citing Colditz et al. (1994)."""
+    path.write_text(
+        "".join(
+            f"@article{{bcg{i:02d},\n title = {{BCG trial {i}}},\n journal = {{JAMA}},\n"
+            f" year = {{1994}},\n doi = {{10.1001/jama.1994.03510330076038}}}}\n"
+            for i in range(len(BCG_COUNTS))
+        )
+    )
+    return path
+
+
 def bcg_log_rr() -> tuple[np.ndarray, np.ndarray]:
     """Log risk ratio and its variance 1/a - 1/n1 + 1/c - 1/n2 (Borenstein et al. 2009, ch. 5)."""
     tpos, tneg, cpos, cneg = (np.array(col, dtype=float) for col in zip(*BCG_COUNTS, strict=True))

@@ -16,7 +16,7 @@ from registry.priors.definition import parse_definition
 from registry.priors.store import select_entries
 from registry.storage.ledger import Ledger
 from tests.conftest import write_sheet
-from tests.test_frequentist import BCG_COUNTS, SE, Y
+from tests.test_frequentist import BCG_COUNTS, SE, Y, write_bcg_bibliography
 
 BASE = """
 name = "bcg"
@@ -37,14 +37,7 @@ ess_unit = "participants"
 @pytest.fixture
 def bcg(cli, tmp_path: Path) -> Path:
     db = tmp_path / "bcg.db"
-    bib = tmp_path / "bcg.bib"
-    bib.write_text(
-        "".join(
-            f"@article{{bcg{i:02d},\n title = {{BCG trial {i}}},\n journal = {{JAMA}},\n"
-            f" year = {{1994}},\n doi = {{10.1001/jama.1994.03510330076038}}}}\n"
-            for i in range(len(BCG_COUNTS))
-        )
-    )
+    bib = write_bcg_bibliography(tmp_path / "bcg.bib")
     assert cli("sources", "import", bib, "--db", db).code == 0
     rows = [
         [

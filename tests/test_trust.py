@@ -128,7 +128,7 @@ def test_a_tau_prior_in_units_of_the_unit_sd() -> None:
         pool_entries(schools(), method="bayes", tau_prior="half-normal:0.5*unit_sd")
 
 
-def test_log_scale_default_is_stated(cli, tmp_path: Path) -> None:
+def test_log_scale_default_is_stated() -> None:
     result = pool_entries(pumps(), method="bayes", likelihood="exact")
     assert result.tau_prior == "half-normal:0.5"
 

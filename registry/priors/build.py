@@ -310,16 +310,22 @@ class _EssCheck:
     target: Target
     scale: str
     model: UnitModel
+    # each candidate's ESS, kept: the chosen one is asked for again for its ratios
+    _seen: dict[tuple[Component, ...], dict[str, Any]] = field(
+        default_factory=dict, repr=False, compare=False
+    )
 
     def _ess(self, components: tuple[Component, ...]) -> dict[str, Any]:
         from registry.priors.ess import ess_all
 
-        return ess_all(
-            Prior.candidate(self.scale, components),
-            unit_sd=self.model.unit_sd,
-            unit=self.model.unit,
-            likelihood=self.model.likelihood,
-        )
+        if components not in self._seen:
+            self._seen[components] = ess_all(
+                Prior.candidate(self.scale, components),
+                unit_sd=self.model.unit_sd,
+                unit=self.model.unit,
+                likelihood=self.model.likelihood,
+            )
+        return self._seen[components]
 
     @cached_property
     def exact(self) -> dict[str, Any]:
