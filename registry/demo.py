@@ -13,7 +13,7 @@ from typing import Any
 
 from registry.errors import InputError
 from registry.storage.ledger import EntryView, ImportReport, Ledger, SourceImportReport
-from registry.storage.priors import StoredPrior
+from registry.storage.views import StoredPrior
 
 SHEET = "falls-sheet.csv"
 BIBLIOGRAPHY = "falls-sources.bib"
@@ -103,11 +103,10 @@ def check_only_demo(ledger: Ledger) -> None:
     """Refuse a registry that holds anything but the demo, so that invented priors never land
     among a group's real ones."""
     from registry.priors.definition import load_definition
-    from registry.storage.priors import list_versions
 
     foreign = sorted({s.key for s in ledger.sources()} - _demo_keys())
     names = {load_definition(seed_path(n)).name for n in DEFINITIONS}
-    foreign += sorted({p.prior.name for p in list_versions(ledger)} - names)
+    foreign += sorted({p.prior.name for p in ledger.priors()} - names)
     if foreign:
         raise InputError(
             f"this registry holds more than the invented demo ({', '.join(foreign[:3])}"

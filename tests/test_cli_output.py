@@ -84,7 +84,8 @@ def test_listings_redirected_show_full_cells(cli, demo: tuple[Path, str], tmp_pa
     for text in tables.values():
         assert "…" not in text and "..." not in text
     for source in json.loads(cli("sources", "--json", "--db", db).stdout)["sources"]:
-        (row,) = [line for line in tables["sources"].splitlines() if f" {source['key']} " in line]
+        # off a terminal a table is plain columns: the key starts its row
+        (row,) = [line for line in tables["sources"].splitlines() if line.startswith(source["key"])]
         assert source["doi"] in row and source["citation"] in row
 
 
@@ -160,12 +161,12 @@ def test_user_text_round_trips_verbatim(cli, tmp_path: Path, db_path: Path) -> N
 def test_an_internal_error_is_one_line_naming_its_traceback_file(
     cli, monkeypatch: pytest.MonkeyPatch, tmp_path: Path, db_path: Path
 ) -> None:
-    from registry.storage.ledger import Ledger
+    from registry.storage.reads import Reads
 
     def broken(*args: object, **kwargs: object) -> None:
         raise RuntimeError("simulated failure\non two lines")
 
-    monkeypatch.setattr(Ledger, "sources", broken)
+    monkeypatch.setattr(Reads, "sources", broken)
     monkeypatch.setattr(tempfile, "tempdir", str(tmp_path))
     result = cli("sources", "--db", db_path)
 

@@ -12,9 +12,10 @@ import json
 from pathlib import Path
 
 import pytest
+from sqlalchemy import text
 
-from registry.storage.ledger import Ledger, entries_query, sources_query
-from registry.storage.priors import latest_revisions_query
+from registry.storage.ledger import Ledger
+from registry.storage.reads import entries_sql, latest_revisions_sql, sources_sql
 from tests.conftest import write_sheet
 
 
@@ -24,10 +25,10 @@ def ledger(tmp_path: Path) -> Ledger:
     return Ledger.open(str(tmp_path / "plans.db"))
 
 
-def plan(ledger: Ledger, query) -> list[str]:  # type: ignore[no-untyped-def]
-    sql = str(query.compile(ledger.engine, compile_kwargs={"literal_binds": True}))
+def plan(ledger: Ledger, query: tuple[str, dict]) -> list[str]:
+    sql, params = query
     with ledger.engine.connect() as connection:
-        return [row[-1] for row in connection.exec_driver_sql("EXPLAIN QUERY PLAN " + sql)]
+        return [row[-1] for row in connection.execute(text("EXPLAIN QUERY PLAN " + sql), params)]
 
 
 def assert_indexed(steps: list[str]) -> None:
@@ -50,7 +51,7 @@ def assert_indexed(steps: list[str]) -> None:
     ],
 )
 def test_entry_listings_use_the_indexes(ledger: Ledger, filters: dict, index: str) -> None:
-    steps = plan(ledger, entries_query(include_retracted=True, **filters).limit(1000))
+    steps = plan(ledger, entries_sql(include_retracted=True, limit=1000, **filters))
     assert any(index in step for step in steps), steps
     # the current revision is found by a probe of the (entry, revision) index, not a GROUP BY
     assert any("sqlite_autoindex_entry_revisions_1 (entry_id=? AND revision>?)" in s for s in steps)
@@ -59,20 +60,21 @@ def test_entry_listings_use_the_indexes(ledger: Ledger, filters: dict, index: st
 
 def test_a_common_tag_walks_the_entries_in_id_order_without_sorting(ledger: Ledger) -> None:
     steps = plan(
-        ledger, entries_query(tags=["t"], include_retracted=True, tags_in_id_order=True).limit(9)
+        ledger, entries_sql(tags=["t"], include_retracted=True, tags_in_id_order=True, limit=9)
     )
     assert not any("TEMP B-TREE" in s for s in steps), steps
     assert any(s.startswith("SCAN") and "sqlite_autoindex_entry_revisions_1" in s for s in steps)
 
 
 def test_sources_are_counted_on_the_source_index(ledger: Ledger) -> None:
-    steps = plan(ledger, sources_query().limit(1000))
+    steps = plan(ledger, sources_sql(limit=1000))
     assert any("ix_entry_revisions_source_entry (source_id=?)" in s for s in steps), steps
     assert any("sqlite_autoindex_sources_1" in s for s in steps), steps
 
 
 def test_staleness_reads_the_latest_revisions_from_the_index(ledger: Ledger) -> None:
-    steps = plan(ledger, latest_revisions_query([1, 2, 3]))
+    params: dict = {}
+    steps = plan(ledger, (latest_revisions_sql([1, 2, 3], params), params))
     assert any("COVERING INDEX sqlite_autoindex_entry_revisions_1" in s for s in steps), steps
 
 

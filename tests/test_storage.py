@@ -10,7 +10,7 @@ from alembic.runtime.migration import MigrationContext
 from sqlalchemy import create_engine, inspect
 
 from registry.errors import InputError, NotFoundError
-from registry.storage import db
+from registry.storage import db, location
 from registry.storage.ledger import Ledger
 from registry.storage.models import Base
 from tests.conftest import write_sheet
@@ -46,10 +46,10 @@ def test_a_foreign_database_is_refused(tmp_path: Path) -> None:
 def test_location_resolution(monkeypatch: pytest.MonkeyPatch, tmp_path: Path) -> None:
     monkeypatch.chdir(tmp_path)
     monkeypatch.delenv("PRIORLEDGER_DB", raising=False)
-    assert db.resolve_url() == f"sqlite:///{tmp_path / 'priorledger.db'}"
+    assert location.resolve_url() == f"sqlite:///{tmp_path / 'priorledger.db'}"
     monkeypatch.setenv("PRIORLEDGER_DB", "team.db")
-    assert db.resolve_url() == f"sqlite:///{tmp_path / 'team.db'}"
-    assert db.resolve_url("postgresql://u@h/x") == "postgresql://u@h/x"
+    assert location.resolve_url() == f"sqlite:///{tmp_path / 'team.db'}"
+    assert location.resolve_url("postgresql://u@h/x") == "postgresql://u@h/x"
 
 
 def test_import_twice_adds_nothing(ledger: Ledger, tmp_path: Path) -> None:

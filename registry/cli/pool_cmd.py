@@ -16,10 +16,10 @@ from registry.cli.common import (
     SourceOption,
     TagOption,
     err,
-    ledger,
     out,
     output_file,
     print_json,
+    reading,
 )
 
 
@@ -90,17 +90,16 @@ def pool(
         output_file(plot, "--plot")
     from registry.priors.selection import pool_entries, repeated_studies, without_retracted
 
-    entries, left_out = without_retracted(
-        ledger(db).entries(
+    with reading(db) as reads:
+        matched = reads.entries(
             quantity=quantity,
             measure=measure,
             tags=tag or (),
             sources=source or (),
             ids=entry or (),
             include_retracted=True,
-        ),
-        include_retracted,
-    )
+        )
+    entries, left_out = without_retracted(matched, include_retracted)
     if left_out:
         err.print(
             f"note: entries {[e.id for e in left_out]} come from retracted sources and are left "

@@ -20,6 +20,7 @@ from registry.cli.common import (
     output_file,
     print_json,
     print_verbatim,
+    reading,
 )
 from registry.errors import CheckFailed
 from registry.values.ess_methods import ESS_METHODS
@@ -117,7 +118,8 @@ def priors(db: DbOption = None, as_json: JsonOption = False) -> None:
     """
     from registry.priors.store import list_priors
 
-    stored = list_priors(ledger(db))
+    with reading(db) as reads:
+        stored = list_priors(reads)
     if as_json:
         print_json({"priors": [s.to_dict() for s in stored]})
         return
@@ -142,7 +144,8 @@ def prior(label: Label, db: DbOption = None, as_json: JsonOption = False) -> Non
     """
     from registry.priors.store import get_prior
 
-    stored = get_prior(ledger(db), label)
+    with reading(db) as reads:
+        stored = get_prior(reads, label)
     if as_json:
         print_json(stored.to_dict())
         return
@@ -194,7 +197,8 @@ def trace(label: Label, db: DbOption = None, as_json: JsonOption = False) -> Non
     """
     from registry.priors.store import trace_prior
 
-    doc = trace_prior(ledger(db), label)
+    with reading(db) as reads:
+        doc = trace_prior(reads, label)
     if as_json:
         print_json(doc)
         return
@@ -279,7 +283,8 @@ def emit(
 
     if out_file is not None:
         output_file(out_file, "--out")
-    prior = get_prior(ledger(db), label).prior
+    with reading(db) as reads:
+        prior = get_prior(reads, label).prior
     for reason in prior.stale:
         err.print(f"warning: {prior.label} is stale: {reason}; rebuild it before use")
     code = emit_code(prior, to, param=param)

@@ -15,6 +15,7 @@ from registry.cli.common import (
     EncodingOption,
     JsonOption,
     LimitOption,
+    Listing,
     MeasureOption,
     OffsetOption,
     QuantityOption,
@@ -29,12 +30,11 @@ from registry.cli.common import (
     out,
     page,
     print_json,
+    reading,
 )
 from registry.errors import InputError
 
 if TYPE_CHECKING:
-    from rich.table import Table
-
     from registry.storage.ledger import EntryView
 
 sources_app = typer.Typer()
@@ -116,7 +116,8 @@ def sources_list(
     """
     if ctx.invoked_subcommand is not None:
         return
-    rows = ledger(db).sources(limit=limit + 1 if limit else None, offset=offset)
+    with reading(db) as reads:
+        rows = reads.sources(limit=limit + 1 if limit else None, offset=offset)
     views, following = page(rows, limit, offset, "sources")
     if as_json:
         print_json({"sources": [v.to_dict() for v in views], "next_offset": following})
@@ -259,15 +260,16 @@ def entries_list(
     if ctx.invoked_subcommand is not None:
         return
     # a listing shows the whole registry; retracted sources are flagged, not hidden
-    rows = ledger(db).entries(
-        quantity=quantity,
-        measure=measure,
-        tags=tag or (),
-        sources=source or (),
-        include_retracted=True,
-        limit=limit + 1 if limit else None,
-        offset=offset,
-    )
+    with reading(db) as reads:
+        rows = reads.entries(
+            quantity=quantity,
+            measure=measure,
+            tags=tag or (),
+            sources=source or (),
+            include_retracted=True,
+            limit=limit + 1 if limit else None,
+            offset=offset,
+        )
     views, following = page(rows, limit, offset, "entries")
     if as_json:
         print_json({"entries": [v.to_dict() for v in views], "next_offset": following})
@@ -275,7 +277,7 @@ def entries_list(
     out.print(entries_table(views))
 
 
-def entries_table(views: list[EntryView]) -> Table:
+def entries_table(views: list[EntryView]) -> Listing:
     """The current entries, one a row; `entries show ID` has the numbers as reported."""
     table = make_table("id", "source", "quantity", "measure", "y", "se", "scale", "conversion")
     for v in views:
@@ -305,7 +307,8 @@ def entries_show(
     """
     from rich.text import Text
 
-    history = ledger(db).entry(entry_id)
+    with reading(db) as reads:
+        history = reads.entry(entry_id)
     if as_json:
         print_json(history.to_dict())
         return

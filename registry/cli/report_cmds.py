@@ -8,7 +8,7 @@ from typing import TYPE_CHECKING, Annotated
 import typer
 
 from registry.cli.check_cmds import Estimate, Events, Exposure, N, Se
-from registry.cli.common import DbOption, JsonOption, err, ledger, out, print_json
+from registry.cli.common import DbOption, JsonOption, err, ledger, out, print_json, reading
 
 if TYPE_CHECKING:
     from registry.priors.diff import PriorDiff, Summary
@@ -58,7 +58,8 @@ def diff(
     """
     from registry.priors.diff import diff_priors
 
-    result = diff_priors(ledger(db), before, after)
+    with reading(db) as reads:
+        result = diff_priors(reads, before, after)
     if as_json:
         print_json(result.to_dict())
         return

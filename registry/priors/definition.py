@@ -67,7 +67,7 @@ from registry.errors import InputError
 from registry.evidence.reading import read_text
 from registry.evidence.sheets import CONTEXT_FIELDS
 from registry.priors.ratings import DOMAINS, DiscountMapping, levels_for
-from registry.storage.db import MAX_ID
+from registry.storage.location import MAX_ID
 
 NAME = re.compile(r"[a-z0-9][a-z0-9_-]*")
 METHODS = ("common", "dl", "pm", "reml", "ml", "bayes")

@@ -11,8 +11,8 @@ from dataclasses import asdict, dataclass
 from typing import Any
 
 from registry.priors.compare import Change, changes, rating_changes
-from registry.storage.ledger import Ledger
-from registry.storage.priors import StoredPrior, load_version
+from registry.storage.reads import Readable
+from registry.storage.views import StoredPrior
 from registry.values.ess_methods import ESS_METHODS
 
 
@@ -115,9 +115,9 @@ class PriorDiff:
         }
 
 
-def diff_priors(ledger: Ledger, before: str, after: str) -> PriorDiff:
+def diff_priors(reader: Readable, before: str, after: str) -> PriorDiff:
     """Compare two stored versions `NAME@A` and `NAME@B` (any two labels)."""
-    a, b = load_version(ledger, before), load_version(ledger, after)
+    a, b = reader.prior(before), reader.prior(after)
     uses_a = {u.id: u for u in a.uses}
     uses_b = {u.id: u for u in b.uses}
     common = sorted(set(uses_a) & set(uses_b))
@@ -125,7 +125,7 @@ def diff_priors(ledger: Ledger, before: str, after: str) -> PriorDiff:
     for i in common:
         ra, rb = uses_a[i].revision, uses_b[i].revision
         if ra != rb:
-            history = ledger.entry(i).revisions
+            history = reader.entry(i).revisions
             lo, hi = min(ra, rb), max(ra, rb)
             reasons = tuple((r.revision, r.reason) for r in history if lo < r.revision <= hi)
             revised.append(Revised(i, ra, rb, reasons))

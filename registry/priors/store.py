@@ -7,7 +7,7 @@ from __future__ import annotations
 
 from collections.abc import Iterable
 from dataclasses import asdict, dataclass, field
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from registry import __version__
 from registry.caution import CAUTION
@@ -16,16 +16,12 @@ from registry.priors.build import Construction, construct, idle_rules, inputs_di
 from registry.priors.compare import Change, changes, rating_changes
 from registry.priors.definition import Definition, definition_from_canonical
 from registry.priors.selection import repeated_studies
-from registry.storage.ledger import EntryView, Ledger
-from registry.storage.priors import (
-    StoredPrior,
-    Use,
-    latest_version,
-    list_versions,
-    load_version,
-    save_version,
-)
+from registry.storage.reads import Readable
+from registry.storage.views import EntryView, StoredPrior, Use
 from registry.values.frozen import thaw
+
+if TYPE_CHECKING:
+    from registry.storage.ledger import Ledger
 
 __all__ = [
     "LeftOut",
@@ -63,9 +59,9 @@ class Selection:
     left_out: tuple[LeftOut, ...]
 
 
-def _matching(ledger: Ledger, definition: Definition, include_retracted: bool) -> list[EntryView]:
+def _matching(reader: Readable, definition: Definition, include_retracted: bool) -> list[EntryView]:
     """The current entries the definition's filters (quantity, measure, tags, sources) match."""
-    return ledger.entries(
+    return reader.entries(
         quantity=definition["select.quantity"],
         measure=definition["select.measure"],
         tags=definition["select.tags"],
@@ -96,12 +92,12 @@ def _why_left_out(entry: EntryView, definition: Definition) -> tuple[str, ...]:
     )
 
 
-def left_out(ledger: Ledger, definition: Definition, used: Iterable[int]) -> list[LeftOut]:
+def left_out(reader: Readable, definition: Definition, used: Iterable[int]) -> list[LeftOut]:
     """The current entries the definition's filters (quantity, measure, tags, sources) match
     but that are not among `used`, each with the reasons the selection gives for leaving it
     out: excluded by id or tag, another report of the same study, a retracted source."""
     used = set(used)
-    matched = _matching(ledger, definition, include_retracted=True)
+    matched = _matching(reader, definition, include_retracted=True)
     return [
         LeftOut(e.id, e.revision, e.source, e.study, _why_left_out(e, definition))
         for e in matched
@@ -109,20 +105,20 @@ def left_out(ledger: Ledger, definition: Definition, used: Iterable[int]) -> lis
     ]
 
 
-def select_entries(ledger: Ledger, definition: Definition) -> list[EntryView]:
+def select_entries(reader: Readable, definition: Definition) -> list[EntryView]:
     """The current entries a definition selects; a study reported twice must be resolved.
 
     Entries from retracted sources are left out unless `select.include_retracted` is true.
     """
     retracted_too = definition["select.include_retracted"]
-    chosen = _matching(ledger, definition, retracted_too)
+    chosen = _matching(reader, definition, retracted_too)
     excluded_tags = set(definition["select.exclude_tags"])
     excluded = set(definition["select.exclude"])
     chosen = [e for e in chosen if e.id not in excluded and not excluded_tags & set(e.tags)]
     known = {e.id for e in chosen}
     include = [i for i in definition["select.include"] if i not in known]
     if include:
-        found = ledger.entries(ids=include, include_retracted=retracted_too)
+        found = reader.entries(ids=include, include_retracted=retracted_too)
         missing = sorted(set(include) - {e.id for e in found})
         if missing:
             raise InputError(
@@ -153,11 +149,11 @@ def select_entries(ledger: Ledger, definition: Definition) -> list[EntryView]:
     return chosen
 
 
-def selection(ledger: Ledger, definition: Definition) -> Selection:
+def selection(reader: Readable, definition: Definition) -> Selection:
     """What `select_entries` chooses, with every entry the filters match that it leaves out
     and why (excluded by id or tag, another report of the same study, a retracted source)."""
-    chosen = select_entries(ledger, definition)
-    return Selection(tuple(chosen), tuple(left_out(ledger, definition, [e.id for e in chosen])))
+    chosen = select_entries(reader, definition)
+    return Selection(tuple(chosen), tuple(left_out(reader, definition, [e.id for e in chosen])))
 
 
 def build_prior(
@@ -167,6 +163,9 @@ def build_prior(
     recorded under `user` (`registry.storage.db.who`), unless the latest version has the
     same digest (then that version is returned). `strict` makes a rule that matches no
     selected entry an error."""
+    # storing loads SQLAlchemy, which the commands that only read a prior do without
+    from registry.storage.priors import latest_version, save_version
+
     entries = select_entries(ledger, definition)
     idle_rules(definition, entries, strict=strict)  # checked even when nothing is rebuilt
     latest = latest_version(ledger, definition.name)
@@ -188,14 +187,14 @@ def build_prior(
     )
 
 
-def list_priors(ledger: Ledger) -> list[StoredPrior]:
+def list_priors(reader: Readable) -> list[StoredPrior]:
     """Every stored version, newest version of each name last."""
-    return list_versions(ledger)
+    return reader.priors()
 
 
-def get_prior(ledger: Ledger, label: str) -> StoredPrior:
+def get_prior(reader: Readable, label: str) -> StoredPrior:
     """`NAME@N`, or the latest version of `NAME`."""
-    return load_version(ledger, label)
+    return reader.prior(label)
 
 
 @dataclass(frozen=True)
@@ -227,12 +226,12 @@ class Verification:
         }
 
 
-def verify_prior(ledger: Ledger, label: str) -> Verification:
+def verify_prior(reader: Readable, label: str) -> Verification:
     """Rebuild from the stored definition and the exact entry revisions used; compare, and
     say in one line per difference which setting, entry revision or component changed."""
-    stored = get_prior(ledger, label)
+    stored = get_prior(reader, label)
     definition = definition_from_canonical(thaw(stored.definition))
-    entries = ledger.revisions([(u.id, u.revision) for u in stored.uses])
+    entries = reader.revisions([(u.id, u.revision) for u in stored.uses])
     # the stored weight is tried first: a verified cap costs one build, not a solve
     rebuilt = construct(definition, entries, rebuild=True, solved_power=stored.result.global_power)
     differences = [
@@ -271,14 +270,14 @@ def verify_prior(ledger: Ledger, label: str) -> Verification:
     )
 
 
-def trace_prior(ledger: Ledger, label: str) -> dict[str, Any]:
+def trace_prior(reader: Readable, label: str) -> dict[str, Any]:
     """Prior -> definition -> each entry (revision, ratings, weight) -> source -> reported
     numbers -> conversion -> y, se: what a reviewer needs without opening the database; with
     every revision of each entry and its reason, and the entries the selection left out."""
-    stored = get_prior(ledger, label)
+    stored = get_prior(reader, label)
     entries = []
     for use in stored.uses:
-        history = ledger.entry(use.id).revisions
+        history = reader.entry(use.id).revisions
         view = next(r for r in history if r.revision == use.revision)
         entries.append(
             {
@@ -331,7 +330,7 @@ def trace_prior(ledger: Ledger, label: str) -> dict[str, Any]:
         "left_out": [
             x.to_dict()
             for x in left_out(
-                ledger,
+                reader,
                 definition_from_canonical(thaw(stored.definition)),
                 [u.id for u in stored.uses],
             )

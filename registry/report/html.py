@@ -33,7 +33,7 @@ from registry.priors.diff import Summary
 from registry.priors.store import Verification, get_prior, trace_prior, verify_prior
 from registry.report.figures import ForestRow, discount_forest_svg, predictive_svg, svg_text
 from registry.storage.ledger import Ledger
-from registry.storage.priors import StoredPrior
+from registry.storage.views import StoredPrior
 from registry.values.ess_methods import TABLE as ESS_TABLE
 from registry.values.frozen import thaw
 from registry.values.measures import MEASURES

@@ -7,20 +7,21 @@
 from __future__ import annotations
 
 import hashlib
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Iterator, Mapping, Sequence
+from contextlib import contextmanager
 from dataclasses import dataclass, field, replace
 from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
-from sqlalchemy import Engine, func, select, tuple_
-from sqlalchemy.orm import Session, aliased, joinedload, selectinload, sessionmaker
+from sqlalchemy import Connection, Engine, func, select, text
+from sqlalchemy.orm import Session, selectinload, sessionmaker
 
 from registry.errors import InputError, NotFoundError
 from registry.evidence.bibliography import read_bibliography
 from registry.evidence.elicit import Elicitation, read_elicitation
 from registry.evidence.sheets import COLUMNS, REQUIRED, SheetRow, parse_row, read_sheet
-from registry.storage import db
+from registry.storage import db, location
 from registry.storage.models import (
     Entry,
     EntryRevision,
@@ -30,137 +31,8 @@ from registry.storage.models import (
     SourceRevision,
     Study,
 )
-
-
-@dataclass(frozen=True)
-class SourceView:
-    key: str
-    citation: str | None
-    doi: str | None
-    year: int | None
-    title: str | None
-    authors: str | None
-    journal: str | None
-    retracted: bool
-    retraction_reason: str | None
-    entries: int
-    created_at: str | None = None
-    created_by: str | None = None
-    retracted_at: str | None = None
-    retracted_by: str | None = None
-
-    @classmethod
-    def of(cls, source: Source, entries: int = 0) -> SourceView:
-        return cls(
-            source.key,
-            source.citation,
-            source.doi,
-            source.year,
-            source.title,
-            source.authors,
-            source.journal,
-            source.retracted,
-            source.retraction_reason,
-            entries,
-            _when(source.created_at),
-            source.created_by,
-            _when(source.retracted_at),
-            source.retracted_by,
-        )
-
-    def to_dict(self) -> dict[str, Any]:
-        return dict(self.__dict__)
-
-
-@dataclass(frozen=True)
-class EntryView:
-    """One revision of an entry, with what a reviewer needs to place it."""
-
-    id: int
-    revision: int
-    source: str
-    study: str
-    quantity: str
-    measure: str
-    scale: str
-    y: float
-    se: float
-    conversion: str
-    corrections: tuple[str, ...]
-    reported: dict[str, str]
-    context: dict[str, str]
-    tags: tuple[str, ...]
-    extra: dict[str, str]
-    reason: str
-    created_at: str
-    citation: str | None = None
-    doi: str | None = None
-    retracted: bool = False
-    created_by: str | None = None
-    retraction_reason: str | None = None
-
-    @classmethod
-    def of(cls, rev: EntryRevision) -> EntryView:
-        return cls(
-            id=rev.entry_id,
-            revision=rev.revision,
-            source=rev.source.key,
-            study=rev.study.key,
-            quantity=rev.quantity,
-            measure=rev.measure,
-            scale=rev.scale,
-            y=rev.y,
-            se=rev.se,
-            conversion=rev.conversion,
-            corrections=tuple(rev.corrections),
-            reported=dict(rev.reported),
-            context=dict(rev.context),
-            tags=tuple(t.tag for t in rev.tags),
-            extra=dict(rev.extra),
-            reason=rev.reason,
-            created_at=rev.created_at.isoformat(),
-            citation=rev.source.citation,
-            doi=rev.source.doi,
-            retracted=rev.source.retracted,
-            created_by=rev.created_by,
-            retraction_reason=rev.source.retraction_reason,
-        )
-
-    @property
-    def cells(self) -> dict[str, str]:
-        """The entry as sheet cells, the form a revision edits."""
-        return {
-            "source": self.source,
-            "study": self.study,
-            "quantity": self.quantity,
-            "measure": self.measure,
-            **self.reported,
-            **self.context,
-            **({"tags": ";".join(self.tags)} if self.tags else {}),
-            **self.extra,
-        }
-
-    def to_dict(self) -> dict[str, Any]:
-        doc = dict(self.__dict__)
-        doc["corrections"] = list(self.corrections)
-        doc["tags"] = list(self.tags)
-        return doc
-
-
-@dataclass(frozen=True)
-class EntryHistory:
-    current: EntryView
-    revisions: tuple[EntryView, ...]
-    imported_from: str | None = None
-    row_key: str | None = None
-
-    def to_dict(self) -> dict[str, Any]:
-        return {
-            **self.current.to_dict(),
-            "imported_from": self.imported_from,
-            "row_key": self.row_key,
-            "revisions": [r.to_dict() for r in self.revisions],
-        }
+from registry.storage.reads import Reads
+from registry.storage.views import EntryHistory, EntryView, SourceView, StoredPrior
 
 
 @dataclass(frozen=True)
@@ -253,95 +125,8 @@ class SourceImportReport:
         }
 
 
-def _when(moment: datetime | None) -> str | None:
-    return None if moment is None else moment.isoformat()
-
-
 def _sha256(path: Path) -> str:
     return hashlib.sha256(path.read_bytes()).hexdigest()
-
-
-# Source, study and tags come with the revisions (not one query a row when a view is made).
-_WITH_PLACE = (
-    joinedload(EntryRevision.source),
-    joinedload(EntryRevision.study),
-    selectinload(EntryRevision.tags),
-)
-
-
-def _head_revisions():  # type: ignore[no-untyped-def]
-    """The current revision of every entry, as a query to filter further.
-
-    A revision is current when no later revision of its entry exists: one probe of the
-    (entry_id, revision) index a row, where a GROUP BY over every revision would read the
-    whole table before the first row came out.
-    """
-    later = aliased(EntryRevision)
-    newer = (
-        select(later.id)
-        .where(later.entry_id == EntryRevision.entry_id, later.revision > EntryRevision.revision)
-        .exists()
-    )
-    return select(EntryRevision).where(~newer).options(*_WITH_PLACE)
-
-
-# A tag on more than this many times the rows a page needs is matched in entry id order.
-COMMON_TAG_FACTOR = 20
-
-
-def entries_query(
-    *,
-    quantity: str | None = None,
-    measure: str | None = None,
-    tags: Sequence[str] = (),
-    sources: Sequence[str] = (),
-    ids: Iterable[int] = (),
-    include_retracted: bool = False,
-    tags_in_id_order: bool = False,
-):  # type: ignore[no-untyped-def]
-    """The query behind `Ledger.entries`, in entry id order (its plan is tested to use the
-    indexes of migration 0005).
-
-    A tag is matched from the tag index (every revision with the tag, then sorted by entry),
-    or, with `tags_in_id_order`, by walking the entries in id order and probing each one's
-    tags, which stops as soon as a page is full: far faster for a tag most entries carry.
-    """
-    query = _head_revisions()
-    if not include_retracted:
-        query = query.where(
-            EntryRevision.source_id.in_(select(Source.id).where(Source.retracted.is_(False)))
-        )
-    if quantity:
-        query = query.where(EntryRevision.quantity == quantity)
-    if measure:
-        query = query.where(EntryRevision.measure == measure)
-    for tag in tags:
-        query = query.where(
-            select(EntryTag.tag)
-            .where(EntryTag.revision_id == EntryRevision.id, EntryTag.tag == tag)
-            .exists()
-            if tags_in_id_order
-            else EntryRevision.id.in_(select(EntryTag.revision_id).where(EntryTag.tag == tag))
-        )
-    if sources:
-        query = query.where(
-            EntryRevision.source_id.in_(select(Source.id).where(Source.key.in_(list(sources))))
-        )
-    ids = list(ids)
-    if ids:
-        query = query.where(EntryRevision.entry_id.in_(ids))
-    return query.order_by(EntryRevision.entry_id)
-
-
-def sources_query():  # type: ignore[no-untyped-def]
-    """Sources by key, each with the number of entries that have a revision citing it,
-    counted on the (source, entry) index for the sources of a page only."""
-    entries = (
-        select(func.count(func.distinct(EntryRevision.entry_id)))
-        .where(EntryRevision.source_id == Source.id)
-        .scalar_subquery()
-    )
-    return select(Source, entries).order_by(Source.key)
 
 
 SOURCE_METADATA = ("citation", "title", "authors", "journal", "doi", "year")
@@ -421,6 +206,15 @@ def _keyed_plan(row: SheetRow, entry: Entry, allow_revert: bool) -> RowPlan:
     return RowPlan(row.row, "revise", entry.id, head.revision + 1, changes)
 
 
+def reads_over(executor: Connection | Session) -> Reads:
+    """The read queries through a SQLAlchemy connection or session (inside its transaction)."""
+
+    def run(sql: str, params: Mapping[str, Any]) -> Sequence[Mapping[str, Any]]:
+        return [row._mapping for row in executor.execute(text(sql), params)]
+
+    return Reads(run)
+
+
 class Ledger:
     """A migrated registry at one database URL."""
 
@@ -430,9 +224,9 @@ class Ledger:
         self._writes = sessionmaker(db.writer(engine), expire_on_commit=False)
 
     @classmethod
-    def open(cls, location: str | None = None) -> Ledger:
-        """Open (and on first use create and migrate) the registry at `location`."""
-        engine = db.make_engine(db.resolve_url(location))
+    def open(cls, where: str | None = None) -> Ledger:
+        """Open (and on first use create and migrate) the registry at `where` (`--db`)."""
+        engine = db.make_engine(location.resolve_url(where))
         db.ensure_schema(engine)
         return cls(engine)
 
@@ -443,6 +237,22 @@ class Ledger:
     def session(self) -> Session:
         """A session for reading; writes go through `transaction`."""
         return self._sessions()
+
+    @contextmanager
+    def reading(self) -> Iterator[Reads]:
+        """The read queries (`registry.storage.reads`) over one read transaction."""
+        with self.engine.connect() as connection:
+            yield reads_over(connection)
+
+    def prior(self, label: str) -> StoredPrior:
+        """`Reads.prior`: `NAME@N`, or the latest version of `NAME`."""
+        with self.reading() as reads:
+            return reads.prior(label)
+
+    def priors(self) -> list[StoredPrior]:
+        """`Reads.priors`: every stored version, by name, oldest version first."""
+        with self.reading() as reads:
+            return reads.priors()
 
     def transaction(self, *, commit: bool = True):  # type: ignore[no-untyped-def]
         return db.transaction(self._writes, commit=commit)
@@ -583,13 +393,9 @@ class Ledger:
             ]
 
     def sources(self, *, limit: int | None = None, offset: int = 0) -> list[SourceView]:
-        """Sources by key, `limit` of them (all if None) after the first `offset`; each with
-        the number of entries that have a revision citing it."""
-        query = sources_query().offset(offset)
-        if limit is not None:
-            query = query.limit(limit)
-        with self._sessions() as session:
-            return [SourceView.of(s, n) for s, n in session.execute(query)]
+        """`Reads.sources`."""
+        with self.reading() as reads:
+            return reads.sources(limit=limit, offset=offset)
 
     @db.retried
     def retract(self, key: str, reason: str, *, user: str | None = None) -> SourceView:
@@ -875,60 +681,22 @@ class Ledger:
     def entries(
         self, *, limit: int | None = None, offset: int = 0, **filters: Any
     ) -> list[EntryView]:
-        """Current revisions of the entries that match every filter given (`entries_query`'s
-        keywords: quantity, measure, tags (all of them), sources, ids, include_retracted), by
-        id: `limit` of them (all if None) after the first `offset`.
-
-        Entries from retracted sources are left out unless `include_retracted` is True.
-        """
-        if filters.get("ids"):
-            filters["ids"] = [db.check_id(i, "--id") for i in filters["ids"]]
-        with self._sessions() as session:
-            query = entries_query(
-                **filters,
-                tags_in_id_order=limit is not None
-                and self._tags_are_common(session, filters.get("tags", ()), offset + limit),
-            )
-            query = query.offset(offset)
-            if limit is not None:
-                query = query.limit(limit)
-            return [EntryView.of(r) for r in session.scalars(query)]
-
-    @staticmethod
-    def _tags_are_common(session: Session, tags: Sequence[str], wanted: int) -> bool:
-        """Whether every tag is on so many revisions that walking the entries in id order
-        fills `wanted` rows sooner than sorting the rarest tag's revisions would (each
-        count is read from the tag index alone)."""
-        return bool(tags) and all(
-            session.scalar(select(func.count()).where(EntryTag.tag == tag))
-            > COMMON_TAG_FACTOR * wanted
-            for tag in tags
-        )
+        """`Reads.entries`: current revisions that match every filter, by id."""
+        with self.reading() as reads:
+            return reads.entries(limit=limit, offset=offset, **filters)
 
     def entry(self, entry_id: int) -> EntryHistory:
         """An entry's current revision and its whole history, oldest first."""
-        with self._sessions() as session:
-            entry = session.get(Entry, db.check_id(entry_id, "ID"))
-            if entry is None:
-                raise NotFoundError(f"no entry with id {entry_id}")
-            views = tuple(EntryView.of(r) for r in entry.revisions)
-            origin = f"{entry.origin.path} row {entry.row}" if entry.origin else None
-            return EntryHistory(views[-1], views, origin, entry.row_key)
+        with self.reading() as reads:
+            return reads.entry(entry_id)
 
     def revision(self, entry_id: int, revision: int) -> EntryView:
-        return self.revisions([(db.check_id(entry_id, "ID"), db.check_id(revision, "revision"))])[0]
+        return self.revisions([(entry_id, revision)])[0]
 
     def revisions(self, wanted: Sequence[tuple[int, int]]) -> list[EntryView]:
         """The given (entry id, revision) pairs, in the order given, read in one query."""
-        pairs = list(wanted)
-        query = select(EntryRevision).options(*_WITH_PLACE)
-        query = query.where(tuple_(EntryRevision.entry_id, EntryRevision.revision).in_(pairs))
-        with self._sessions() as session:
-            found = {(r.entry_id, r.revision): EntryView.of(r) for r in session.scalars(query)}
-        for entry_id, number in pairs:
-            if (entry_id, number) not in found:
-                raise NotFoundError(f"entry {entry_id} has no revision {number}")
-        return [found[p] for p in pairs]
+        with self.reading() as reads:
+            return reads.revisions(wanted)
 
     @db.retried
     def revise(
@@ -957,7 +725,7 @@ class Ledger:
             if name in REQUIRED and not changes[name]:
                 raise InputError("a required value cannot be cleared", field=name, path=where)
         with self.transaction() as session:
-            entry = session.get(Entry, db.check_id(entry_id, "ID"))
+            entry = session.get(Entry, location.check_id(entry_id, "ID"))
             if entry is None:
                 raise NotFoundError(f"no entry with id {entry_id}")
             current = EntryView.of(entry.revisions[-1])
