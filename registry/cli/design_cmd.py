@@ -7,7 +7,6 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Annotated, Any
 
 import typer
-from rich.text import Text
 
 from registry.cli.common import (
     DbOption,
@@ -176,6 +175,8 @@ def design(
 
 
 def render(result: DesignResult) -> None:
+    from rich.text import Text
+
     from registry.checks.design import DESIGN_CAUTION
 
     d, p = result.design, result.prior
