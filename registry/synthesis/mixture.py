@@ -11,8 +11,10 @@ Families and their M-steps:
 - "gamma" on the rate scale, for a grid given on the log scale (r = exp(x)).
 For beta and gamma the M-step is the exact weighted maximum likelihood, found numerically
 from the weighted sufficient statistics (mean log p and log(1 - p); mean r and log r), by
-Newton's method on the digamma equations (gamma) or L-BFGS-B on log a, log b (beta). The
-Jacobian of the change of scale is common to all components, so it leaves EM unchanged.
+Newton's method on the digamma equations (gamma) or damped Newton steps on them (beta). The
+trigamma function there is the Hurwitz zeta function zeta(2, a) (what scipy's
+polygamma(1, a) evaluates, without its array wrapping). The Jacobian of the change of scale
+is common to all components, so it leaves EM unchanged.
 
 Number of components: counts from 1 to `max_components` are fitted in turn; the fit taken is
 the one with the FEWEST components that meets every bound (a single family when one is close
@@ -38,7 +40,7 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
-from scipy import optimize, special, stats
+from scipy import optimize, special
 
 from registry.errors import InputError, NumericalError
 from registry.values.families import from_canonical
@@ -127,7 +129,7 @@ def _gamma_m_step(t: np.ndarray, w: np.ndarray, _old: np.ndarray) -> np.ndarray:
     a = (3 - s + math.sqrt((s - 3) ** 2 + 24 * s)) / (12 * s)
     for _ in range(50):
         g = math.log(a) - special.digamma(a) - s
-        a_new = a * math.exp(-g / (1 - a * special.polygamma(1, a)))
+        a_new = a * math.exp(-g / (1 - a * special.zeta(2, a)))
         if abs(a_new - a) < 1e-12 * a:
             return np.array([a_new, mean / a_new])
         a = a_new
@@ -143,10 +145,8 @@ def _beta_m_step(t: np.ndarray, w: np.ndarray, old: np.ndarray) -> np.ndarray:
         a, b = ab
         total = special.digamma(a + b)
         g = np.array([special.digamma(a) - total - s1, special.digamma(b) - total - s2])
-        tri = special.polygamma(1, a + b)
-        jac = np.array(
-            [[special.polygamma(1, a) - tri, -tri], [-tri, special.polygamma(1, b) - tri]]
-        )
+        tri = special.zeta(2, a + b)
+        jac = np.array([[special.zeta(2, a) - tri, -tri], [-tri, special.zeta(2, b) - tri]])
         step = np.linalg.solve(jac, g)
         scale = 1.0
         while np.any(ab - scale * step <= 0):
@@ -210,9 +210,23 @@ def _logpdf(family: str, params: np.ndarray, t: np.ndarray) -> np.ndarray:
     """(J, G) log densities of the J components at natural-scale points t."""
     from registry.values.families import family as family_class
 
-    names = family_class(family).parameter_names()
-    dist = getattr(stats, family_class(family).scipy_name)
-    return np.stack([dist.logpdf(t, **dict(zip(names, p, strict=True))) for p in params])
+    return family_class(family).log_densities(params, t)
+
+
+def _logsumexp(joint: np.ndarray) -> np.ndarray:
+    """`scipy.special.logsumexp(joint, axis=0)` by SciPy's own steps (the largest terms of
+    each column counted apart: log1p of the rest over their count, plus the log of the
+    count, plus the largest; log of the plain sum where that is not finite), so the sums
+    are the same to the bit, without the general function's checks, which cost as much as
+    EM's own arithmetic."""
+    top = joint.max(axis=0)
+    largest = joint == top
+    count = largest.sum(axis=0, dtype=float)
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        rest = np.exp(np.where(largest, -np.inf, joint) - top).sum(axis=0)
+        rest = np.where(rest == 0, rest, rest / count)
+        out = np.log1p(rest) + np.log(count) + top
+        return np.where(np.isfinite(out), out, np.log(np.exp(joint).sum(axis=0)))
 
 
 def _em(family: str, t: np.ndarray, w: np.ndarray, j: int) -> tuple[np.ndarray, np.ndarray, float]:
@@ -225,7 +239,7 @@ def _em(family: str, t: np.ndarray, w: np.ndarray, j: int) -> tuple[np.ndarray, 
     last = -np.inf
     for _ in range(_EM_STEPS):
         joint = log_pi[:, None] + _logpdf(family, params, t)
-        total = special.logsumexp(joint, axis=0)
+        total = _logsumexp(joint)
         loglik = float(w @ total)
         r = np.exp(joint - total) * w
         mass = r.sum(axis=1)
@@ -235,7 +249,7 @@ def _em(family: str, t: np.ndarray, w: np.ndarray, j: int) -> tuple[np.ndarray, 
             break
         last = loglik
     joint = log_pi[:, None] + _logpdf(family, params, t)
-    return np.exp(log_pi), params, float(w @ special.logsumexp(joint, axis=0))
+    return np.exp(log_pi), params, float(w @ _logsumexp(joint))
 
 
 def _grid_quantiles(x: np.ndarray, density: np.ndarray, levels: np.ndarray) -> np.ndarray:
@@ -326,7 +340,7 @@ def fit_mixture(
             )
         comps = _components(family, pi, params)
         q_err = float(np.max(np.abs(_mixture_quantiles(comps, levels) - target_q)))
-        log_q = special.logsumexp(np.log(pi)[:, None] + _logpdf(family, params, t), axis=0)
+        log_q = _logsumexp(np.log(pi)[:, None] + _logpdf(family, params, t))
         log_q = log_q + log_jac
         q_grid = np.exp(log_q) * dx
         q_grid = q_grid / q_grid.sum()
