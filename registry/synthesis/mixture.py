@@ -258,17 +258,28 @@ def _grid_quantiles(x: np.ndarray, density: np.ndarray, levels: np.ndarray) -> n
 
 
 def _mixture_quantiles(components: tuple[Component, ...], levels: np.ndarray) -> np.ndarray:
-    """Mixture quantiles on the analysis scale (by root finding on the natural scale)."""
-    dists = [(c.weight, c.dist) for c in components]
+    """Mixture quantiles on the analysis scale (by root finding on the natural scale).
+
+    The components share one family, so their distribution functions are evaluated together
+    (`Family.cdfs`); the sum over them is taken in order, as one component at a time."""
+    family = type(components[0].dist)
+    names = family.parameter_names()
+    params = np.array([[c.params[n] for n in names] for c in components])
+    weights = [c.weight for c in components]
+    dists = [c.dist for c in components]
+
+    def cdf(v: float) -> float:
+        return sum(wt * f for wt, f in zip(weights, family.cdfs(params, v)[:, 0], strict=True))
+
     out = []
     for q in levels:
-        lo = min(float(d.ppf(q)) for _, d in dists)
-        hi = max(float(d.ppf(q)) for _, d in dists)
+        lo = min(float(d.ppf(q)) for d in dists)
+        hi = max(float(d.ppf(q)) for d in dists)
         value = (
             lo
             if lo == hi
             else optimize.brentq(
-                lambda v, q=q: sum(wt * d.cdf(v) for wt, d in dists) - q,
+                lambda v, q=q: cdf(v) - q,
                 lo,
                 hi,
                 xtol=1e-14,

@@ -121,6 +121,17 @@ class Family:
         names = cls.parameter_names()
         return np.stack([dist.logpdf(x, **dict(zip(names, p, strict=True))) for p in params])
 
+    @classmethod
+    def cdfs(cls, params: Any, x: Any) -> Any:
+        """(J, G) distribution functions of J members (rows of `params`) at G points x inside
+        the support; by scipy unless the family has a closed form (as `log_densities`)."""
+        import numpy as np
+        from scipy import stats
+
+        dist = getattr(stats, cls.scipy_name)
+        names = cls.parameter_names()
+        return np.stack([dist.cdf(x, **dict(zip(names, p, strict=True))) for p in params])
+
     def pdf(self, x: Any) -> Any:
         return self.frozen().pdf(x)
 
@@ -201,6 +212,15 @@ class Normal(Family):
         loc, scale = (np.asarray(params, dtype=float)[:, i, None] for i in range(2))
         z = (np.asarray(x, dtype=float) - loc) / scale
         return -(z**2) / 2.0 - np.log(np.sqrt(2 * np.pi)) - np.log(scale)
+
+    @classmethod
+    def cdfs(cls, params: Any, x: Any) -> Any:
+        """Phi((x - loc) / scale) (scipy's ndtr)."""
+        import numpy as np
+        from scipy import special
+
+        loc, scale = (np.asarray(params, dtype=float)[:, i, None] for i in range(2))
+        return special.ndtr((np.asarray(x, dtype=float) - loc) / scale)
 
     def canonical_ppf(self, u: float) -> float:
         from scipy import special
@@ -332,6 +352,15 @@ class Beta(Family):
         x = np.asarray(x, dtype=float)
         return special.xlog1py(b - 1.0, -x) + special.xlogy(a - 1.0, x) - special.betaln(a, b)
 
+    @classmethod
+    def cdfs(cls, params: Any, x: Any) -> Any:
+        """The regularised incomplete beta function I_x(a, b)."""
+        import numpy as np
+        from scipy import special
+
+        a, b = (np.asarray(params, dtype=float)[:, i, None] for i in range(2))
+        return special.betainc(a, b, np.asarray(x, dtype=float))
+
     def tail_rates(self) -> tuple[float, float]:
         return self.a, self.b
 
@@ -403,6 +432,15 @@ class Gamma(Family):
         a, scale = (np.asarray(params, dtype=float)[:, i, None] for i in range(2))
         z = np.asarray(x, dtype=float) / scale
         return special.xlogy(a - 1.0, z) - z - special.gammaln(a) - np.log(scale)
+
+    @classmethod
+    def cdfs(cls, params: Any, x: Any) -> Any:
+        """The regularised lower incomplete gamma function P(a, x / scale)."""
+        import numpy as np
+        from scipy import special
+
+        a, scale = (np.asarray(params, dtype=float)[:, i, None] for i in range(2))
+        return special.gammainc(a, np.asarray(x, dtype=float) / scale)
 
     def tail_rates(self) -> tuple[float, float]:
         return self.a, math.inf
