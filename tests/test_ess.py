@@ -610,3 +610,63 @@ def test_beta_with_a_small_b_keeps_its_upper_tail() -> None:
     for a beta with 16% of its mass beyond logit p = 37."""
     p = prior("probability", Component("beta", {"a": 0.95, "b": 0.05}))
     assert ess(p, method="expected_information").value == pytest.approx(1.0, rel=1e-4)
+
+
+# --- the quadrature's first Gauss-Kronrod rule, taken on every piece at once ------------------
+
+
+def test_kronrod_rules_hold_the_gauss_rules_and_their_degree() -> None:
+    """The Gauss nodes and weights inside the 21- and 15-point rules are numpy's
+    Gauss-Legendre rules of 10 and 7 points; a Kronrod rule of 2n + 1 points integrates
+    polynomials of degree 3n + 1 exactly (Piessens et al. 1983, QUADPACK, common practice)."""
+    from registry.priors.ess import _KRONROD_15, _KRONROD_21
+
+    for rule, n in ((_KRONROD_21, 10), (_KRONROD_15, 7)):
+        x, w = np.polynomial.legendre.leggauss(n)
+        gauss = sorted(
+            (s * node, g) for node, _, g in rule if g for s in ((1, -1) if node else (1,))
+        )
+        assert np.allclose([p for p, _ in gauss], x, rtol=0, atol=1e-15)
+        assert np.allclose([g for _, g in gauss], w, rtol=0, atol=1e-15)
+        nodes = np.array([s * node for node, _, _ in rule for s in ((1, -1) if node else (1,))])
+        weights = np.array([k for node, k, _ in rule for _ in ((1, -1) if node else (1,))])
+        for degree in range(3 * n + 2):
+            exact = (1 - (-1) ** (degree + 1)) / (degree + 1)
+            assert weights @ nodes**degree == pytest.approx(exact, abs=1e-14)
+
+
+@pytest.mark.parametrize("seed", range(3))
+def test_first_kronrod_rule_on_all_pieces_is_what_quad_returns(seed: int) -> None:
+    """On each finite piece and each half-line, where scipy's quad stops after its first
+    rule (21 or 15 evaluations), the rule taken on all pieces at once says so too and gives
+    quad's value; where quad goes on, it says so, and the ESS calls quad itself there."""
+    from registry.priors.ess import _first_rules
+
+    rng = np.random.default_rng(seed)
+    dists = [
+        stats.norm(m, s) for m, s in zip(rng.normal(0, 1, 3), rng.uniform(0.05, 2, 3), strict=True)
+    ]
+    weights = rng.dirichlet(np.ones(3))
+
+    def f(x):
+        return sum(
+            w * d.pdf(x) * (1 + np.sin(3 * x)) ** 2 for w, d in zip(weights, dists, strict=True)
+        )
+
+    levels = [1e-6, 1e-3, 0.1, 0.5, 0.9, 1 - 1e-3, 1 - 1e-6]
+    cuts = np.sort(np.concatenate([d.ppf(levels) for d in dists]))
+    lo, hi = cuts[:-1], cuts[1:]
+    inner, outer = _first_rules(f, cuts)
+    pieces = [(a, b, inner, i, 21) for i, (a, b) in enumerate(zip(lo, hi, strict=True))]
+    pieces += [(-np.inf, cuts[0], outer, 0, 15), (cuts[-1], np.inf, outer, 1, 15)]
+    settled = 0
+    for a, b, rule, i, first in pieces:
+        value, error, info = integrate.quad(
+            lambda x: float(f(x)), a, b, limit=500, epsabs=1e-11, epsrel=1e-10, full_output=1
+        )[:3]
+        assert bool(rule.settled()[i]) == (info["neval"] == first)
+        if info["neval"] == first:
+            settled += 1
+            assert rule.value[i] == pytest.approx(value, rel=1e-14, abs=1e-300)
+            assert rule.error[i] == pytest.approx(error, rel=1e-12)
+    assert settled > len(pieces) // 2

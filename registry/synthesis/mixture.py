@@ -213,7 +213,7 @@ def _logpdf(family: str, params: np.ndarray, t: np.ndarray) -> np.ndarray:
     return family_class(family).log_densities(params, t)
 
 
-def _logsumexp(joint: np.ndarray) -> np.ndarray:
+def column_logsumexp(joint: np.ndarray) -> np.ndarray:
     """`scipy.special.logsumexp(joint, axis=0)` by SciPy's own steps (the largest terms of
     each column counted apart: log1p of the rest over their count, plus the log of the
     count, plus the largest; log of the plain sum where that is not finite), so the sums
@@ -239,7 +239,7 @@ def _em(family: str, t: np.ndarray, w: np.ndarray, j: int) -> tuple[np.ndarray, 
     last = -np.inf
     for _ in range(_EM_STEPS):
         joint = log_pi[:, None] + _logpdf(family, params, t)
-        total = _logsumexp(joint)
+        total = column_logsumexp(joint)
         loglik = float(w @ total)
         r = np.exp(joint - total) * w
         mass = r.sum(axis=1)
@@ -249,7 +249,7 @@ def _em(family: str, t: np.ndarray, w: np.ndarray, j: int) -> tuple[np.ndarray, 
             break
         last = loglik
     joint = log_pi[:, None] + _logpdf(family, params, t)
-    return np.exp(log_pi), params, float(w @ _logsumexp(joint))
+    return np.exp(log_pi), params, float(w @ column_logsumexp(joint))
 
 
 def _grid_quantiles(x: np.ndarray, density: np.ndarray, levels: np.ndarray) -> np.ndarray:
@@ -351,7 +351,7 @@ def fit_mixture(
             )
         comps = _components(family, pi, params)
         q_err = float(np.max(np.abs(_mixture_quantiles(comps, levels) - target_q)))
-        log_q = _logsumexp(np.log(pi)[:, None] + _logpdf(family, params, t))
+        log_q = column_logsumexp(np.log(pi)[:, None] + _logpdf(family, params, t))
         log_q = log_q + log_jac
         q_grid = np.exp(log_q) * dx
         q_grid = q_grid / q_grid.sum()
