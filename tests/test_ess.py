@@ -335,6 +335,32 @@ def test_cap_is_met_within_one_percent(
     assert ess_of_power(a) == pytest.approx(cap, rel=0.01)
 
 
+@pytest.mark.parametrize("known", [(0.2, 0.3, 0.6, 0.9), (0.45, 0.5), (0.01,)])
+def test_cap_bracketed_by_known_weights(known: tuple[float, ...]) -> None:
+    """The normal random-effects pool of the test above, ESS = s_u^2 sum_i 1/(se_i^2/a +
+    tau^2), against its exact root (a quadratic for two entries, solved here); weights whose
+    ESS is known bracket the root, and no weight outside that bracket is tried."""
+    ses, tau2, cap = (0.2, 0.5), 0.04, 8.0
+    asked: list[float] = []
+
+    def ess_of_power(a: float) -> float:
+        asked.append(a)
+        return sum(1.0 / (se**2 / a + tau2) for se in ses)
+
+    # cap = sum 1/(s_i/a + t) with s_i = se_i^2: c(s1 + t a)(s2 + t a) = a(s1 + s2 + 2 t a)
+    s1, s2 = (se**2 for se in ses)
+    quadratic = (cap * tau2**2 - 2 * tau2, cap * tau2 * (s1 + s2) - (s1 + s2), cap * s1 * s2)
+    exact = [r.real for r in np.roots(quadratic) if abs(r.imag) < 1e-12 and 0 < r.real < 1]
+    a = solve_power_for_cap(ess_of_power, cap, known=known)
+    assert a == pytest.approx(exact[0], rel=1e-9)
+    below = [w for w in known if w < a]
+    lowest = max(below) if below else 0.0
+    assert all(w in (*known, 1.0) or lowest <= w <= 1.0 for w in asked)
+    if below:
+        above = min(w for w in (*known, 1.0) if w > a)
+        assert all(w in (*known, 1.0) or lowest <= w <= above for w in asked)
+
+
 def test_cap_on_a_robust_mixture_by_elir() -> None:
     """The cap met through the ESS of the finished prior: a power weight a on a normal
     summary N(m, se^2) gives N(m, se^2/a), then robustified with 20% vague weight."""

@@ -613,8 +613,12 @@ def _solve_cap(
         if at_built is None:
             break  # the solver below says why
         ratio = built.ess[ESS_METHOD] / at_built
+        # the weights tried so far cost nothing to ask again: they bracket the next root
         a = solve_power_for_cap(
-            lambda w, r=ratio: None if exact(w) is None else r * exact(w), cap, method=ESS_METHOD
+            lambda w, r=ratio: None if exact(w) is None else r * exact(w),
+            cap,
+            method=ESS_METHOD,
+            known=tuple(done),
         )
         built = build_at(a)
         if _meets_cap(built, cap):

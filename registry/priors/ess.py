@@ -915,15 +915,17 @@ def solve_power_for_cap(
     *,
     tol: float = 0.005,
     method: str = "chosen",
+    known: Iterable[float] = (),
 ) -> float:
     """The global power weight a in (0, 1] whose prior has ESS equal to `cap`.
 
     `ess_of_power(a)` is the ESS by `method` at power weight a, or None where that ESS does
     not exist; a cap is only solved against an ESS that exists at every weight tried. ESS is
     taken to increase with a (a power weight scales information). Returns 1.0 when
-    ESS(1) <= cap; otherwise brackets the root by decades down to 1e-10, solves
-    ESS(a) = cap by Brent's method and checks that the ESS at the answer is within `tol`
-    (relative) of the cap.
+    ESS(1) <= cap; otherwise brackets the root, by the closest of the weights `known` (whose
+    ESS the caller has at hand) on each side where one of them lies below the cap, else by
+    decades down to 1e-10, solves ESS(a) = cap by Brent's method and checks that the ESS at
+    the answer is within `tol` (relative) of the cap.
     """
     if not (math.isfinite(cap) and cap > 0):
         raise InputError(f"an ESS cap must be finite and positive, got {cap}", field="cap")
@@ -943,17 +945,22 @@ def solve_power_for_cap(
 
     if value(1.0) <= cap:
         return 1.0
-    # bracket by decades, so that extreme weights are only tried when needed
-    high = 1.0
-    for low in (10.0**-k for k in range(1, 11)):
-        if value(low) <= cap:
-            break
-        high = low
+    below = [w for w in known if 0 < w < 1 and value(w) <= cap]
+    if below:
+        low = max(below)
+        high = min(w for w in (*known, 1.0) if w > low and value(w) > cap)
     else:
-        raise NumericalError(
-            f"even a global power weight of {low:g} leaves the ESS above "
-            f"the cap {cap:g}; check the cap and its unit"
-        )
+        # bracket by decades, so that extreme weights are only tried when needed
+        high = 1.0
+        for low in (10.0**-k for k in range(1, 11)):
+            if value(low) <= cap:
+                break
+            high = low
+        else:
+            raise NumericalError(
+                f"even a global power weight of {low:g} leaves the ESS above "
+                f"the cap {cap:g}; check the cap and its unit"
+            )
     a = float(
         optimize.brentq(
             lambda w: value(w) / cap - 1.0, low, high, xtol=1e-14, rtol=1e-12, maxiter=200
