@@ -518,6 +518,10 @@ _KRONROD_15 = (
 )
 _EPSILON = float(np.finfo(float).eps)
 _TINY = float(np.finfo(float).tiny)
+# where the line is cut: each component's quantiles (where the mixture's curvature changes
+# fast), out to 1e-14 of the mass in each tail, so that the half-lines beyond hold almost
+# nothing and quad's first rule settles there too
+_CUT_LEVELS = (1e-14, 1e-10, 1e-6, 1e-3, 0.1, 0.5, 0.9, 1 - 1e-3, 1 - 1e-6, 1 - 1e-10, 1 - 1e-14)
 # quad's tolerances on each piece
 _EPSABS, _EPSREL = 1e-11, 1e-10
 
@@ -603,8 +607,8 @@ def _mixture_expected_information(
     components: tuple[Component, ...], model: DataModel
 ) -> tuple[float, dict[str, Any]]:
     """int p(phi) i_p(phi) / i_F(phi) dphi by adaptive quadrature on phi (scipy's quad,
-    QUADPACK's dqagse and dqagie), the line cut at each component's quantiles (where the
-    mixture's curvature changes fast) and its two outer pieces integrated to infinity.
+    QUADPACK's dqagse and dqagie), the line cut at each component's quantiles
+    (`_CUT_LEVELS`) and its two outer pieces integrated to infinity.
 
     quad starts every piece with one Gauss-Kronrod rule and stops there when that rule's
     error estimate meets its tolerance, as on most pieces of a smooth mixture. That first
@@ -618,7 +622,7 @@ def _mixture_expected_information(
             {
                 phi
                 for c in components
-                for q in (1e-6, 1e-3, 0.1, 0.5, 0.9, 1 - 1e-3, 1 - 1e-6)
+                for q in _CUT_LEVELS
                 if math.isfinite(phi := c.dist.canonical_ppf(q))
             }
         )
