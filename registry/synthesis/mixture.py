@@ -223,10 +223,13 @@ def column_logsumexp(joint: np.ndarray) -> np.ndarray:
     largest = joint == top
     count = largest.sum(axis=0, dtype=float)
     with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-        rest = np.exp(np.where(largest, -np.inf, joint) - top).sum(axis=0)
-        rest = np.where(rest == 0, rest, rest / count)
+        # SciPy keeps a zero sum apart from the division; 0 / count is that same zero
+        rest = np.exp(np.where(largest, -np.inf, joint) - top).sum(axis=0) / count
         out = np.log1p(rest) + np.log(count) + top
-        return np.where(np.isfinite(out), out, np.log(np.exp(joint).sum(axis=0)))
+        finite = np.isfinite(out)
+        if finite.all():
+            return out
+        return np.where(finite, out, np.log(np.exp(joint).sum(axis=0)))
 
 
 def _em(family: str, t: np.ndarray, w: np.ndarray, j: int) -> tuple[np.ndarray, np.ndarray, float]:
