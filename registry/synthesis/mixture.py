@@ -274,10 +274,10 @@ def _mixture_quantiles(components: tuple[Component, ...], levels: np.ndarray) ->
     def cdf(v: float) -> float:
         return sum(wt * f for wt, f in zip(weights, family.cdfs(params, v)[:, 0], strict=True))
 
+    # each level's root lies between the components' own quantiles there
+    own = np.array([d.ppf(levels) for d in dists], dtype=float)
     out = []
-    for q in levels:
-        lo = min(float(d.ppf(q)) for d in dists)
-        hi = max(float(d.ppf(q)) for d in dists)
+    for q, lo, hi in zip(levels, own.min(axis=0), own.max(axis=0), strict=True):
         value = (
             lo
             if lo == hi
