@@ -517,8 +517,10 @@ def _at_power(
     from registry.priors.ess import ess_all
     from registry.priors.update import vague_component, with_vague_component
 
-    discounts, pooled, target = pooled_target or _pooled_target(
-        definition, entries, ratings, global_power, retracted_ok
+    discounts, pooled, target = (
+        _pooled_target(definition, entries, ratings, global_power, retracted_ok)
+        if pooled_target is None
+        else pooled_target
     )
     fitted = _fit_family(target, definition, row, row.scale)
     model = unit_model(row, fitted.scale, definition)

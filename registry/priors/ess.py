@@ -505,7 +505,7 @@ _EPSABS, _EPSREL = 1e-11, 1e-10
 
 
 @dataclass(frozen=True)
-class _Rule:
+class _FirstRule:
     """One Gauss-Kronrod rule on pieces at once: the estimate, QUADPACK's error estimate,
     the integral of |f| and of |f - mean|, each an array over the pieces."""
 
@@ -525,7 +525,7 @@ class _Rule:
 
 def _kronrod(
     centre: np.ndarray, half: np.ndarray, values: Callable[[np.ndarray], np.ndarray], rule: tuple
-) -> _Rule:
+) -> _FirstRule:
     """QUADPACK's dqk21 / dqk15i steps, in its order of summation, on every piece at once:
     `values(t)` gives the (transformed) integrand at the nodes t = centre -+ half x."""
     nodes = np.array([x for x, _, _ in rule[:-1]])
@@ -561,12 +561,12 @@ def _kronrod(
     error = np.where(
         absolute > _TINY / (50.0 * _EPSILON), np.maximum(50.0 * _EPSILON * absolute, error), error
     )
-    return _Rule(kronrod * half, error, absolute, spread)
+    return _FirstRule(kronrod * half, error, absolute, spread)
 
 
 def _first_rules(
     integrand: Callable[[np.ndarray], np.ndarray], cuts: np.ndarray
-) -> tuple[_Rule, _Rule]:
+) -> tuple[_FirstRule, _FirstRule]:
     """quad's first rule on each finite piece between the increasing `cuts` (21 points) and
     on the half-lines below the first cut and above the last (15 points, in that order)."""
     lo, hi = cuts[:-1], cuts[1:]
