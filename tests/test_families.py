@@ -98,6 +98,27 @@ def test_tail_rates_are_the_slopes_far_out(name: str, params: dict[str, float]) 
             assert slope_further == pytest.approx(rate, abs=1e-4)
 
 
+@pytest.mark.parametrize("name", list(CASES))
+def test_log_densities_and_cdfs_of_many_members_match_scipy(name: str) -> None:
+    """The vectorised log densities and distribution functions (closed forms for the
+    families EM fits) against scipy's logpdf and cdf of each member alone, from far in the
+    tails to the ends of the support."""
+    cls = FAMILIES[name]
+    members = CASES[name]
+    params = np.array([[p[k] for k in cls.parameter_names()] for p in members])
+    refs = [reference(name, p) for p in members]
+    x = np.unique(np.concatenate([r.ppf(np.geomspace(1e-12, 1 - 1e-12, 200)) for r in refs]))
+    ends = {"real": [], "positive": [0.0], "unit": [0.0, 1.0]}[cls.support]
+    x = np.concatenate([ends, x])
+    for got, want_of in ((cls.log_densities(params, x), "logpdf"), (cls.cdfs(params, x), "cdf")):
+        assert got.shape == (len(members), x.size)
+        for row, ref in zip(got, refs, strict=True):
+            want = getattr(ref, want_of)(x)
+            finite = np.isfinite(want)
+            np.testing.assert_array_equal(row[~finite], want[~finite])
+            np.testing.assert_allclose(row[finite], want[finite], rtol=1e-13, atol=1e-300)
+
+
 UPDATES = [
     (Normal(0.3, 0.5), (1.1, 0.4), lambda t, y, se: stats.norm.pdf(y, t, se), 0.0),
     (Beta(3.0, 9.0), (7.0, 20.0), lambda t, x, n: stats.binom.pmf(x, n, t), None),

@@ -24,7 +24,6 @@ import json
 import math
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, field
-from functools import cached_property
 from typing import Any
 
 from registry.errors import InputError, NumericalError
@@ -155,6 +154,27 @@ class Target:
     density: Any = field(repr=False)
     closed: Component | None = None
     exact: Any = field(default=None, repr=False)  # the predictive, with pdf and ppf
+    # the exact target's ESS by scale and unit of data, kept: a cap solve asks for it again
+    _ess: dict[tuple[str, UnitModel], dict[str, Any]] = field(
+        default_factory=dict, repr=False, compare=False
+    )
+
+    def exact_ess(self, scale: str, model: UnitModel) -> dict[str, Any]:
+        """Every method's ESS of the exact target as a prior on `scale` (`ess_of_density` on
+        `canonical_density`), computed once per scale and unit of data."""
+        from registry.priors.ess import ess_of_density
+        from registry.values.scales import SUPPORT
+
+        key = (scale, model)
+        if key not in self._ess:
+            self._ess[key] = ess_of_density(
+                self.canonical_density(SUPPORT[scale]),
+                scale,
+                unit_sd=model.unit_sd,
+                unit=model.unit,
+                likelihood=model.likelihood,
+            )
+        return self._ess[key]
 
     def canonical_density(self, support: str) -> Any:
         """The exact target as a density of the canonical coordinate of `support` (which is the
@@ -327,18 +347,9 @@ class _EssCheck:
             )
         return self._seen[components]
 
-    @cached_property
+    @property
     def exact(self) -> dict[str, Any]:
-        from registry.priors.ess import ess_of_density
-        from registry.values.scales import SUPPORT
-
-        return ess_of_density(
-            self.target.canonical_density(SUPPORT[self.scale]),
-            self.scale,
-            unit_sd=self.model.unit_sd,
-            unit=self.model.unit,
-            likelihood=self.model.likelihood,
-        )
+        return self.target.exact_ess(self.scale, self.model)
 
     def ratios(self, components: tuple[Component, ...]) -> dict[str, float | None]:
         """Mixture ESS over exact ESS by method (None where either does not exist or the
@@ -499,12 +510,17 @@ def _at_power(
     global_power: float,
     row: Measure,
     retracted_ok: bool,
+    pooled_target: tuple[tuple[Discount, ...], Any, Target] | None = None,
 ) -> _Run:
+    """Steps 2-6 at one global power weight; `pooled_target` is steps 2-3 at that weight
+    where they have been done already."""
     from registry.priors.ess import ess_all
     from registry.priors.update import vague_component, with_vague_component
 
-    discounts, pooled, target = _pooled_target(
-        definition, entries, ratings, global_power, retracted_ok
+    discounts, pooled, target = (
+        _pooled_target(definition, entries, ratings, global_power, retracted_ok)
+        if pooled_target is None
+        else pooled_target
     )
     fitted = _fit_family(target, definition, row, row.scale)
     model = unit_model(row, fitted.scale, definition)
@@ -573,20 +589,25 @@ def _solve_cap(
 
     cap = definition["discount.ess_cap"]
 
+    # steps 2-3 at each weight tried, kept: the solver and the builds ask again at a weight
+    done = {1.0: (run.discounts, run.pooled, run.target)}
+
+    def pooled_at(a: float) -> tuple[tuple[Discount, ...], Any, Target]:
+        if a not in done:
+            done[a] = _pooled_target(definition, entries, ratings, global_power * a, retracted_ok)
+        return done[a]
+
     def build_at(a: float) -> _Run:
-        return _at_power(definition, entries, ratings, global_power * a, row, retracted_ok)
+        return _at_power(
+            definition, entries, ratings, global_power * a, row, retracted_ok, pooled_at(a)
+        )
 
     if run.target.exact is None:
         a = power_for_ess_cap(lambda a: build_at(a).ess, cap, method=ESS_METHOD)
         return global_power * a, build_at(a)
 
-    exact_at: dict[float, float] = {}
-
     def exact(a: float) -> float | None:
-        if a not in exact_at:
-            target = _pooled_target(definition, entries, ratings, global_power * a, retracted_ok)
-            exact_at[a] = _EssCheck(target[2], run.fitted.scale, run.model).exact[ESS_METHOD]
-        return exact_at[a]
+        return pooled_at(a)[2].exact_ess(run.fitted.scale, run.model)[ESS_METHOD]
 
     a, built = 1.0, run
     for _ in range(CAP_BUILDS):
@@ -594,8 +615,12 @@ def _solve_cap(
         if at_built is None:
             break  # the solver below says why
         ratio = built.ess[ESS_METHOD] / at_built
+        # the weights tried so far cost nothing to ask again: they bracket the next root
         a = solve_power_for_cap(
-            lambda w, r=ratio: None if exact(w) is None else r * exact(w), cap, method=ESS_METHOD
+            lambda w, r=ratio: None if exact(w) is None else r * exact(w),
+            cap,
+            method=ESS_METHOD,
+            known=tuple(done),
         )
         built = build_at(a)
         if _meets_cap(built, cap):

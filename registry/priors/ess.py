@@ -413,80 +413,221 @@ def _check_existence(components: tuple[Component, ...], model: DataModel) -> Non
         )
 
 
-def _logsumexp(values: np.ndarray) -> float:
-    """`scipy.special.logsumexp` of a short array with at least one finite value, by SciPy's
-    own steps (the largest terms counted apart: log1p of the rest over their count, plus the
-    log of the count, plus the largest), so the sums are the same to the bit, without the
-    general function's checks, which cost most of the integrand's time in quadrature."""
-    top = values.max()
-    largest = values == top
-    count = float(largest.sum())
-    rest = float(np.exp(np.where(largest, -np.inf, values) - top).sum())
-    if rest != 0:
-        rest = rest / count
-    return float(np.log1p(rest) + np.log(count) + top)
-
-
-def _log_domain_integrand(components: tuple[Component, ...], model: DataModel) -> Any:
-    """phi -> p(phi) i_p(phi) / i_F(phi), summed in log form so that neither the prior's
-    tails nor the vanishing unit information overflow.
+def _log_domain_integrand(
+    components: tuple[Component, ...], model: DataModel
+) -> Callable[[np.ndarray], np.ndarray]:
+    """phi -> p(phi) i_p(phi) / i_F(phi) at an array of points, summed in log form so that
+    neither the prior's tails nor the vanishing unit information overflow.
 
     With l_j = log w_j f_j, L = log p and lambda = log i_F, p i_p = -sum_j e^{l_j} h_j -
     sum_{j<k} e^{l_j + l_k - L} (g_j - g_k)^2 (the responsibility-weighted variance of the
     gradients written pairwise, which keeps the small cross terms of the tails accurate).
+    Terms whose log weight has underflowed to -inf count as 0, and so does every point where
+    the whole mixture has underflowed.
     """
-    pairs = [(j, k) for j in range(len(components)) for k in range(j + 1, len(components))]
+    from registry.synthesis.mixture import column_logsumexp
 
-    def integrand(phi: float) -> float:
-        terms = [c.dist.canonical_terms(np.array([phi])) for c in components]
-        log_w = np.array(
-            [math.log(c.weight) + float(t[0][0]) for c, t in zip(components, terms, strict=True)]
-        )
-        if not np.any(np.isfinite(log_w)):
-            return 0.0  # the whole mixture has underflowed this far out
-        g = np.array([float(t[1][0]) for t in terms])
-        h = np.array([float(t[2][0]) for t in terms])
-        log_p = _logsumexp(log_w)
-        log_i = float(model.log_canonical_information(phi))
+    pairs = [(j, k) for j in range(len(components)) for k in range(j + 1, len(components))]
+    log_weights = [math.log(c.weight) for c in components]
+
+    def integrand(phi: np.ndarray) -> np.ndarray:
+        flat = np.asarray(phi, dtype=float).ravel()
+        terms = [c.dist.canonical_terms(flat) for c in components]
+        log_w = np.stack([lw + t[0] for lw, t in zip(log_weights, terms, strict=True)])
+        g = np.stack([t[1] for t in terms])
+        h = np.stack([t[2] for t in terms])
+        log_i = model.log_canonical_information(flat)
+        live = np.isfinite(log_w)
         with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
-            own = [
-                -np.sign(h[j]) * math.exp(log_w[j] - log_i + math.log(abs(h[j])))
-                for j in range(len(components))
-                if math.isfinite(log_w[j]) and h[j] != 0.0
-            ]
-            cross = [
-                math.exp(log_w[j] + log_w[k] - log_p - log_i + 2.0 * math.log(abs(g[j] - g[k])))
+            log_p = column_logsumexp(log_w)
+            own = np.where(
+                live & (h != 0.0), -np.sign(h) * np.exp(log_w - log_i + np.log(np.abs(h))), 0.0
+            ).sum(axis=0)
+            cross = sum(
+                np.where(
+                    live[j] & live[k] & (g[j] != g[k]),
+                    np.exp(log_w[j] + log_w[k] - log_p - log_i + 2.0 * np.log(np.abs(g[j] - g[k]))),
+                    0.0,
+                )
                 for j, k in pairs
-                if math.isfinite(log_w[j] + log_w[k]) and g[j] != g[k]
-            ]
-        return math.fsum(own) - math.fsum(cross)
+            )
+        return np.where(live.any(axis=0), own - cross, 0.0).reshape(np.shape(phi))
 
     return integrand
+
+
+def _rule(table: str) -> tuple[tuple[float, float, float], ...]:
+    """Rows of node, Kronrod weight, Gauss weight (0 off the Gauss nodes)."""
+    return tuple(tuple(map(float, row.split())) for row in table.strip().splitlines())
+
+
+# The Gauss-Kronrod rules of QUADPACK (Piessens, de Doncker-Kapenga, Ueberhuber & Kahaner
+# 1983, "QUADPACK", Springer), which scipy's quad applies: the 21-point rule (its 10-point
+# Gauss rule on the even-numbered nodes) on a finite piece, the 15-point rule (its 7-point
+# Gauss rule on the even-numbered nodes) on a half-line mapped to (0, 1] by
+# phi = bound +- (1 - t)/t. Nodes from the outside in, the centre last; each value is the
+# double nearest the rule's published 33-digit constant, written to 17 digits.
+_KRONROD_21 = _rule(
+    """
+    0.9956571630258081   0.011694638867371874   0.0
+    0.9739065285171717   0.032558162307964725   0.06667134430868814
+    0.9301574913557082   0.054755896574351995   0.0
+    0.8650633666889845   0.07503967481091996    0.1494513491505806
+    0.7808177265864169   0.0931254545836976     0.0
+    0.6794095682990244   0.10938715880229764    0.21908636251598204
+    0.5627571346686047   0.12349197626206584    0.0
+    0.4333953941292472   0.13470921731147334    0.26926671930999635
+    0.2943928627014602   0.14277593857706009    0.0
+    0.14887433898163122  0.14773910490133849    0.29552422471475287
+    0.0                  0.1494455540029169     0.0
+    """
+)
+_KRONROD_15 = _rule(
+    """
+    0.9914553711208126   0.022935322010529224   0.0
+    0.9491079123427585   0.06309209262997856    0.1294849661688697
+    0.8648644233597691   0.10479001032225019    0.0
+    0.7415311855993945   0.14065325971552592    0.27970539148927664
+    0.5860872354676911   0.1690047266392679     0.0
+    0.4058451513773972   0.19035057806478542    0.3818300505051189
+    0.20778495500789848  0.20443294007529889    0.0
+    0.0                  0.20948214108472782    0.4179591836734694
+    """
+)
+_EPSILON = float(np.finfo(float).eps)
+_TINY = float(np.finfo(float).tiny)
+# where the line is cut: each component's quantiles (where the mixture's curvature changes
+# fast), out to 1e-14 of the mass in each tail, so that the half-lines beyond hold almost
+# nothing and quad's first rule settles there too
+_CUT_LEVELS = (1e-14, 1e-10, 1e-6, 1e-3, 0.1, 0.5, 0.9, 1 - 1e-3, 1 - 1e-6, 1 - 1e-10, 1 - 1e-14)
+# quad's tolerances on each piece
+_EPSABS, _EPSREL = 1e-11, 1e-10
+
+
+@dataclass(frozen=True)
+class _FirstRule:
+    """One Gauss-Kronrod rule on pieces at once: the estimate, QUADPACK's error estimate,
+    the integral of |f| and of |f - mean|, each an array over the pieces."""
+
+    value: np.ndarray
+    error: np.ndarray
+    absolute: np.ndarray
+    spread: np.ndarray
+
+    def settled(self) -> np.ndarray:
+        """Where QUADPACK's adaptive routine stops after this first rule (dqagse, dqagie:
+        the error within max(epsabs, epsrel |value|), or no better than rounding allows, or
+        zero), so that quad would return exactly this value."""
+        bound = np.maximum(_EPSABS, _EPSREL * np.abs(self.value))
+        rounding = (self.error <= 100.0 * _EPSILON * self.absolute) & (self.error > bound)
+        return rounding | ((self.error <= bound) & (self.error != self.spread)) | (self.error == 0)
+
+
+def _kronrod(
+    centre: np.ndarray, half: np.ndarray, values: Callable[[np.ndarray], np.ndarray], rule: tuple
+) -> _FirstRule:
+    """QUADPACK's dqk21 / dqk15i steps, in its order of summation, on every piece at once:
+    `values(t)` gives the (transformed) integrand at the nodes t = centre -+ half x."""
+    nodes = np.array([x for x, _, _ in rule[:-1]])
+    inner = np.asarray(half)[:, None] * nodes
+    left = values(centre[:, None] - inner)
+    right = values(centre[:, None] + inner)
+    mid = values(centre)
+    # dqk15i's Gauss rule has the centre and adds every node in turn (a weight 0 off the
+    # Gauss nodes); dqk21's has no centre and adds its Gauss nodes before the others
+    every = rule[-1][2] != 0.0
+    gauss = rule[-1][2] * mid if every else np.zeros_like(mid)
+    kronrod = rule[-1][1] * mid
+    absolute = np.abs(kronrod)
+    last = len(rule) - 1
+    order = range(last) if every else [*range(1, last, 2), *range(0, last, 2)]
+    for j in order:
+        pair = left[:, j] + right[:, j]
+        if every or rule[j][2]:
+            gauss = gauss + rule[j][2] * pair
+        kronrod = kronrod + rule[j][1] * pair
+        absolute = absolute + rule[j][1] * (np.abs(left[:, j]) + np.abs(right[:, j]))
+    centre_value = kronrod * 0.5
+    spread = rule[-1][1] * np.abs(mid - centre_value)
+    for j in range(last):
+        spread = spread + rule[j][1] * (
+            np.abs(left[:, j] - centre_value) + np.abs(right[:, j] - centre_value)
+        )
+    absolute, spread = absolute * np.abs(half), spread * np.abs(half)
+    error = np.abs((kronrod - gauss) * half)
+    with np.errstate(divide="ignore", invalid="ignore"):
+        scaled = spread * np.minimum(1.0, (200.0 * error / spread) ** 1.5)
+    error = np.where((spread != 0) & (error != 0), scaled, error)
+    error = np.where(
+        absolute > _TINY / (50.0 * _EPSILON), np.maximum(50.0 * _EPSILON * absolute, error), error
+    )
+    return _FirstRule(kronrod * half, error, absolute, spread)
+
+
+def _first_rules(
+    integrand: Callable[[np.ndarray], np.ndarray], cuts: np.ndarray
+) -> tuple[_FirstRule, _FirstRule]:
+    """quad's first rule on each finite piece between the increasing `cuts` (21 points) and
+    on the half-lines below the first cut and above the last (15 points, in that order)."""
+    lo, hi = cuts[:-1], cuts[1:]
+    inner = _kronrod(0.5 * (lo + hi), 0.5 * (hi - lo), integrand, _KRONROD_21)
+    bounds = cuts[[0, -1]]
+    towards = np.array([-1.0, 1.0])  # the lower half-line, then the upper
+
+    def on_unit(t: np.ndarray) -> np.ndarray:
+        shape = (-1,) + (1,) * (np.ndim(t) - 1)
+        return integrand(bounds.reshape(shape) + towards.reshape(shape) * (1.0 - t) / t) / t / t
+
+    return inner, _kronrod(np.full(2, 0.5), np.full(2, 0.5), on_unit, _KRONROD_15)
 
 
 def _mixture_expected_information(
     components: tuple[Component, ...], model: DataModel
 ) -> tuple[float, dict[str, Any]]:
-    """int p(phi) i_p(phi) / i_F(phi) dphi by adaptive quadrature on phi, the line cut at
-    each component's quantiles (where the mixture's curvature changes fast) and its two
-    outer pieces integrated to infinity (quad's transformation to a finite interval)."""
+    """int p(phi) i_p(phi) / i_F(phi) dphi by adaptive quadrature on phi (scipy's quad,
+    QUADPACK's dqagse and dqagie), the line cut at each component's quantiles
+    (`_CUT_LEVELS`) and its two outer pieces integrated to infinity.
+
+    quad starts every piece with one Gauss-Kronrod rule and stops there when that rule's
+    error estimate meets its tolerance, as on most pieces of a smooth mixture. That first
+    rule is taken here on all pieces at once, with the integrand evaluated on all their
+    nodes together, and quad is called only on the pieces where it would go on to divide
+    the piece; so the value is quad's, to rounding, at a fraction of its calls."""
     _check_existence(components, model)
     integrand = _log_domain_integrand(components, model)
-    cuts = sorted(
-        {
-            phi
-            for c in components
-            for q in (1e-6, 1e-3, 0.1, 0.5, 0.9, 1 - 1e-3, 1 - 1e-6)
-            if math.isfinite(phi := c.dist.canonical_ppf(q))
-        }
+    cuts = np.array(
+        sorted(
+            {
+                phi
+                for c in components
+                for q in _CUT_LEVELS
+                if math.isfinite(phi := c.dist.canonical_ppf(q))
+            }
+        )
     )
-    pieces = [(-math.inf, cuts[0]), *itertools.pairwise(cuts), (cuts[-1], math.inf)]
+    inner, outer = _first_rules(integrand, cuts)
+    done_inner, done_outer = inner.settled(), outer.settled()
+    pieces = [
+        ((-math.inf, cuts[0]), outer, done_outer[0], 0),
+        *(((a, b), inner, done_inner[i], i) for i, (a, b) in enumerate(itertools.pairwise(cuts))),
+        ((cuts[-1], math.inf), outer, done_outer[1], 1),
+    ]
     total, err = 0.0, 0.0
     with warnings.catch_warnings():
         # quad's own warnings are replaced by the accuracy check below
         warnings.simplefilter("ignore", integrate.IntegrationWarning)
-        for lo, hi in pieces:
-            value, abserr = integrate.quad(integrand, lo, hi, limit=500, epsabs=1e-11, epsrel=1e-10)
+        for (a, b), rule, settled, i in pieces:
+            if settled:
+                value, abserr = float(rule.value[i]), float(rule.error[i])
+            else:
+                value, abserr = integrate.quad(
+                    lambda x: float(integrand(np.array([x]))[0]),
+                    a,
+                    b,
+                    limit=500,
+                    epsabs=_EPSABS,
+                    epsrel=_EPSREL,
+                )
             total += value
             err += abserr
     _check_accuracy(total, err)
@@ -756,15 +897,17 @@ def solve_power_for_cap(
     *,
     tol: float = 0.005,
     method: str = "chosen",
+    known: Iterable[float] = (),
 ) -> float:
     """The global power weight a in (0, 1] whose prior has ESS equal to `cap`.
 
     `ess_of_power(a)` is the ESS by `method` at power weight a, or None where that ESS does
     not exist; a cap is only solved against an ESS that exists at every weight tried. ESS is
     taken to increase with a (a power weight scales information). Returns 1.0 when
-    ESS(1) <= cap; otherwise brackets the root by decades down to 1e-10, solves
-    ESS(a) = cap by Brent's method and checks that the ESS at the answer is within `tol`
-    (relative) of the cap.
+    ESS(1) <= cap; otherwise brackets the root, by the closest of the weights `known` (whose
+    ESS the caller has at hand) on each side where one of them lies below the cap, else by
+    decades down to 1e-10, solves ESS(a) = cap by Brent's method and checks that the ESS at
+    the answer is within `tol` (relative) of the cap.
     """
     if not (math.isfinite(cap) and cap > 0):
         raise InputError(f"an ESS cap must be finite and positive, got {cap}", field="cap")
@@ -784,17 +927,22 @@ def solve_power_for_cap(
 
     if value(1.0) <= cap:
         return 1.0
-    # bracket by decades, so that extreme weights are only tried when needed
-    high = 1.0
-    for low in (10.0**-k for k in range(1, 11)):
-        if value(low) <= cap:
-            break
-        high = low
+    below = [w for w in known if 0 < w < 1 and value(w) <= cap]
+    if below:
+        low = max(below)
+        high = min(w for w in (*known, 1.0) if w > low and value(w) > cap)
     else:
-        raise NumericalError(
-            f"even a global power weight of {low:g} leaves the ESS above "
-            f"the cap {cap:g}; check the cap and its unit"
-        )
+        # bracket by decades, so that extreme weights are only tried when needed
+        high = 1.0
+        for low in (10.0**-k for k in range(1, 11)):
+            if value(low) <= cap:
+                break
+            high = low
+        else:
+            raise NumericalError(
+                f"even a global power weight of {low:g} leaves the ESS above "
+                f"the cap {cap:g}; check the cap and its unit"
+            )
     a = float(
         optimize.brentq(
             lambda w: value(w) / cap - 1.0, low, high, xtol=1e-14, rtol=1e-12, maxiter=200

@@ -11,8 +11,10 @@ Families and their M-steps:
 - "gamma" on the rate scale, for a grid given on the log scale (r = exp(x)).
 For beta and gamma the M-step is the exact weighted maximum likelihood, found numerically
 from the weighted sufficient statistics (mean log p and log(1 - p); mean r and log r), by
-Newton's method on the digamma equations (gamma) or L-BFGS-B on log a, log b (beta). The
-Jacobian of the change of scale is common to all components, so it leaves EM unchanged.
+Newton's method on the digamma equations (gamma) or damped Newton steps on them (beta). The
+trigamma function there is the Hurwitz zeta function zeta(2, a) (what scipy's
+polygamma(1, a) evaluates, without its array wrapping). The Jacobian of the change of scale
+is common to all components, so it leaves EM unchanged.
 
 Number of components: counts from 1 to `max_components` are fitted in turn; the fit taken is
 the one with the FEWEST components that meets every bound (a single family when one is close
@@ -38,7 +40,7 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
-from scipy import optimize, special, stats
+from scipy import optimize, special
 
 from registry.errors import InputError, NumericalError
 from registry.values.families import from_canonical
@@ -127,7 +129,7 @@ def _gamma_m_step(t: np.ndarray, w: np.ndarray, _old: np.ndarray) -> np.ndarray:
     a = (3 - s + math.sqrt((s - 3) ** 2 + 24 * s)) / (12 * s)
     for _ in range(50):
         g = math.log(a) - special.digamma(a) - s
-        a_new = a * math.exp(-g / (1 - a * special.polygamma(1, a)))
+        a_new = a * math.exp(-g / (1 - a * special.zeta(2, a)))
         if abs(a_new - a) < 1e-12 * a:
             return np.array([a_new, mean / a_new])
         a = a_new
@@ -143,10 +145,8 @@ def _beta_m_step(t: np.ndarray, w: np.ndarray, old: np.ndarray) -> np.ndarray:
         a, b = ab
         total = special.digamma(a + b)
         g = np.array([special.digamma(a) - total - s1, special.digamma(b) - total - s2])
-        tri = special.polygamma(1, a + b)
-        jac = np.array(
-            [[special.polygamma(1, a) - tri, -tri], [-tri, special.polygamma(1, b) - tri]]
-        )
+        tri = special.zeta(2, a + b)
+        jac = np.array([[special.zeta(2, a) - tri, -tri], [-tri, special.zeta(2, b) - tri]])
         step = np.linalg.solve(jac, g)
         scale = 1.0
         while np.any(ab - scale * step <= 0):
@@ -210,9 +210,26 @@ def _logpdf(family: str, params: np.ndarray, t: np.ndarray) -> np.ndarray:
     """(J, G) log densities of the J components at natural-scale points t."""
     from registry.values.families import family as family_class
 
-    names = family_class(family).parameter_names()
-    dist = getattr(stats, family_class(family).scipy_name)
-    return np.stack([dist.logpdf(t, **dict(zip(names, p, strict=True))) for p in params])
+    return family_class(family).log_densities(params, t)
+
+
+def column_logsumexp(joint: np.ndarray) -> np.ndarray:
+    """`scipy.special.logsumexp(joint, axis=0)` by SciPy's own steps (the largest terms of
+    each column counted apart: log1p of the rest over their count, plus the log of the
+    count, plus the largest; log of the plain sum where that is not finite), so the sums
+    are the same to the bit, without the general function's checks, which cost as much as
+    EM's own arithmetic."""
+    top = joint.max(axis=0)
+    largest = joint == top
+    count = largest.sum(axis=0, dtype=float)
+    with np.errstate(divide="ignore", invalid="ignore", over="ignore"):
+        # SciPy keeps a zero sum apart from the division; 0 / count is that same zero
+        rest = np.exp(np.where(largest, -np.inf, joint) - top).sum(axis=0) / count
+        out = np.log1p(rest) + np.log(count) + top
+        finite = np.isfinite(out)
+        if finite.all():
+            return out
+        return np.where(finite, out, np.log(np.exp(joint).sum(axis=0)))
 
 
 def _em(family: str, t: np.ndarray, w: np.ndarray, j: int) -> tuple[np.ndarray, np.ndarray, float]:
@@ -225,7 +242,7 @@ def _em(family: str, t: np.ndarray, w: np.ndarray, j: int) -> tuple[np.ndarray, 
     last = -np.inf
     for _ in range(_EM_STEPS):
         joint = log_pi[:, None] + _logpdf(family, params, t)
-        total = special.logsumexp(joint, axis=0)
+        total = column_logsumexp(joint)
         loglik = float(w @ total)
         r = np.exp(joint - total) * w
         mass = r.sum(axis=1)
@@ -235,7 +252,7 @@ def _em(family: str, t: np.ndarray, w: np.ndarray, j: int) -> tuple[np.ndarray, 
             break
         last = loglik
     joint = log_pi[:, None] + _logpdf(family, params, t)
-    return np.exp(log_pi), params, float(w @ special.logsumexp(joint, axis=0))
+    return np.exp(log_pi), params, float(w @ column_logsumexp(joint))
 
 
 def _grid_quantiles(x: np.ndarray, density: np.ndarray, levels: np.ndarray) -> np.ndarray:
@@ -244,17 +261,28 @@ def _grid_quantiles(x: np.ndarray, density: np.ndarray, levels: np.ndarray) -> n
 
 
 def _mixture_quantiles(components: tuple[Component, ...], levels: np.ndarray) -> np.ndarray:
-    """Mixture quantiles on the analysis scale (by root finding on the natural scale)."""
-    dists = [(c.weight, c.dist) for c in components]
+    """Mixture quantiles on the analysis scale (by root finding on the natural scale).
+
+    The components share one family, so their distribution functions are evaluated together
+    (`Family.cdfs`); the sum over them is taken in order, as one component at a time."""
+    family = type(components[0].dist)
+    names = family.parameter_names()
+    params = np.array([[c.params[n] for n in names] for c in components])
+    weights = [c.weight for c in components]
+    dists = [c.dist for c in components]
+
+    def cdf(v: float) -> float:
+        return sum(wt * f for wt, f in zip(weights, family.cdfs(params, v)[:, 0], strict=True))
+
+    # each level's root lies between the components' own quantiles there
+    own = np.array([d.ppf(levels) for d in dists], dtype=float)
     out = []
-    for q in levels:
-        lo = min(float(d.ppf(q)) for _, d in dists)
-        hi = max(float(d.ppf(q)) for _, d in dists)
+    for q, lo, hi in zip(levels, own.min(axis=0), own.max(axis=0), strict=True):
         value = (
             lo
             if lo == hi
             else optimize.brentq(
-                lambda v, q=q: sum(wt * d.cdf(v) for wt, d in dists) - q,
+                lambda v, q=q: cdf(v) - q,
                 lo,
                 hi,
                 xtol=1e-14,
@@ -326,7 +354,7 @@ def fit_mixture(
             )
         comps = _components(family, pi, params)
         q_err = float(np.max(np.abs(_mixture_quantiles(comps, levels) - target_q)))
-        log_q = special.logsumexp(np.log(pi)[:, None] + _logpdf(family, params, t), axis=0)
+        log_q = column_logsumexp(np.log(pi)[:, None] + _logpdf(family, params, t))
         log_q = log_q + log_jac
         q_grid = np.exp(log_q) * dx
         q_grid = q_grid / q_grid.sum()

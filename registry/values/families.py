@@ -107,6 +107,31 @@ class Family:
     def logpdf(self, x: Any) -> Any:
         return self.frozen().logpdf(x)
 
+    @classmethod
+    def log_densities(cls, params: Any, x: Any) -> Any:
+        """(J, G) log densities of J members of the family, given as the rows of `params`
+        (in `parameter_names()` order), at G points x, all inside the support.
+
+        By scipy, one distribution at a time; a family overrides it with its closed form,
+        vectorised over the members, for EM (scipy's per-call checks dominate there)."""
+        import numpy as np
+        from scipy import stats
+
+        dist = getattr(stats, cls.scipy_name)
+        names = cls.parameter_names()
+        return np.stack([dist.logpdf(x, **dict(zip(names, p, strict=True))) for p in params])
+
+    @classmethod
+    def cdfs(cls, params: Any, x: Any) -> Any:
+        """(J, G) distribution functions of J members (rows of `params`) at G points x inside
+        the support; by scipy unless the family has a closed form (as `log_densities`)."""
+        import numpy as np
+        from scipy import stats
+
+        dist = getattr(stats, cls.scipy_name)
+        names = cls.parameter_names()
+        return np.stack([dist.cdf(x, **dict(zip(names, p, strict=True))) for p in params])
+
     def pdf(self, x: Any) -> Any:
         return self.frozen().pdf(x)
 
@@ -177,6 +202,25 @@ class Normal(Family):
 
     def canonical_terms(self, phi: Any) -> tuple[Any, Any, Any]:
         return _normal_terms(phi, self.loc, self.scale)
+
+    @classmethod
+    def log_densities(cls, params: Any, x: Any) -> Any:
+        """-z²/2 - log sqrt(2 pi) - log scale, z = (x - loc)/scale (handbook; scipy's order
+        of operations, so the values agree with scipy's to the bit)."""
+        import numpy as np
+
+        loc, scale = (np.asarray(params, dtype=float)[:, i, None] for i in range(2))
+        z = (np.asarray(x, dtype=float) - loc) / scale
+        return -(z**2) / 2.0 - np.log(np.sqrt(2 * np.pi)) - np.log(scale)
+
+    @classmethod
+    def cdfs(cls, params: Any, x: Any) -> Any:
+        """Phi((x - loc) / scale) (scipy's ndtr)."""
+        import numpy as np
+        from scipy import special
+
+        loc, scale = (np.asarray(params, dtype=float)[:, i, None] for i in range(2))
+        return special.ndtr((np.asarray(x, dtype=float) - loc) / scale)
 
     def canonical_ppf(self, u: float) -> float:
         from scipy import special
@@ -297,6 +341,26 @@ class Beta(Family):
 
         return float(special.logit(special.betaincinv(self.a, self.b, u)))
 
+    @classmethod
+    def log_densities(cls, params: Any, x: Any) -> Any:
+        """(b - 1) log(1 - x) + (a - 1) log x - log B(a, b) (handbook; scipy's order of
+        operations)."""
+        import numpy as np
+        from scipy import special
+
+        a, b = (np.asarray(params, dtype=float)[:, i, None] for i in range(2))
+        x = np.asarray(x, dtype=float)
+        return special.xlog1py(b - 1.0, -x) + special.xlogy(a - 1.0, x) - special.betaln(a, b)
+
+    @classmethod
+    def cdfs(cls, params: Any, x: Any) -> Any:
+        """The regularised incomplete beta function I_x(a, b)."""
+        import numpy as np
+        from scipy import special
+
+        a, b = (np.asarray(params, dtype=float)[:, i, None] for i in range(2))
+        return special.betainc(a, b, np.asarray(x, dtype=float))
+
     def tail_rates(self) -> tuple[float, float]:
         return self.a, self.b
 
@@ -357,6 +421,26 @@ class Gamma(Family):
         from scipy import special
 
         return math.log(float(special.gammaincinv(self.a, u)) * self.scale)
+
+    @classmethod
+    def log_densities(cls, params: Any, x: Any) -> Any:
+        """(a - 1) log z - z - log Gamma(a) - log scale, z = x / scale (handbook; scipy's
+        order of operations)."""
+        import numpy as np
+        from scipy import special
+
+        a, scale = (np.asarray(params, dtype=float)[:, i, None] for i in range(2))
+        z = np.asarray(x, dtype=float) / scale
+        return special.xlogy(a - 1.0, z) - z - special.gammaln(a) - np.log(scale)
+
+    @classmethod
+    def cdfs(cls, params: Any, x: Any) -> Any:
+        """The regularised lower incomplete gamma function P(a, x / scale)."""
+        import numpy as np
+        from scipy import special
+
+        a, scale = (np.asarray(params, dtype=float)[:, i, None] for i in range(2))
+        return special.gammainc(a, np.asarray(x, dtype=float) / scale)
 
     def tail_rates(self) -> tuple[float, float]:
         return self.a, math.inf
