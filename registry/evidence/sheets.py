@@ -19,12 +19,13 @@ from __future__ import annotations
 import hashlib
 import json
 import re
+from collections.abc import Iterator
 from dataclasses import dataclass, field, replace
 from pathlib import Path
 
 from registry.errors import ConversionError, InputError
 from registry.evidence.convert import NUMERIC_FIELDS, Derived, derive
-from registry.evidence.reading import read_grid
+from registry.evidence.reading import iter_grid
 from registry.values.measures import MEASURES
 
 REQUIRED = ("source", "quantity", "measure")
@@ -104,12 +105,13 @@ def read_cells(
     required: tuple[str, ...] = REQUIRED,
     decimal_comma: bool = False,
     encoding: str | None = None,
-) -> list[dict[str, str]]:
-    """The sheet's data rows as column -> text, empty cells left out."""
-    grid = read_grid(path, encoding, decimal_comma=decimal_comma)
-    if not grid:
+) -> Iterator[dict[str, str]]:
+    """The sheet's data rows as column -> text, empty cells left out, one at a time."""
+    grid = iter_grid(path, encoding, decimal_comma=decimal_comma)
+    first = next(grid, None)
+    if first is None:
         raise InputError("the sheet is empty", path=str(path))
-    header = [h.strip().lower() for h in grid[0]]
+    header = [h.strip().lower() for h in first]
     for name in header:
         if name and name not in columns and not name.startswith("x_"):
             raise InputError(
@@ -124,10 +126,8 @@ def read_cells(
     duplicated = {h for h in header if h and header.count(h) > 1}
     if duplicated:
         raise InputError("column appears twice", field=sorted(duplicated)[0], row=1, path=str(path))
-    rows = []
-    for cells in grid[1:]:
-        rows.append({h: c for h, c in zip(header, cells, strict=False) if h and c != ""})
-    return rows
+    for cells in grid:
+        yield {h: c for h, c in zip(header, cells, strict=False) if h and c != ""}
 
 
 def parse_number(
@@ -249,18 +249,20 @@ def parse_row(cells: dict[str, str], *, decimal_comma: bool = False) -> SheetRow
     )
 
 
-def read_sheet(
+def iter_sheet(
     path: str | Path, *, decimal_comma: bool = False, encoding: str | None = None
-) -> list[SheetRow]:
-    """Every row of a sheet, validated; the first bad cell raises with file, row and column.
+) -> Iterator[SheetRow]:
+    """Every row of a sheet, validated, one at a time in sheet order (a large sheet is never
+    held whole); the first bad cell raises with file, row and column.
 
-    A `row_key` given on two rows is an error naming the second.
+    A `row_key` given on two rows is an error naming the second (the keys seen so far are
+    the only thing kept from one row to the next).
     """
     path = Path(path)
     if not path.is_file():
         raise InputError("no such file", path=str(path))
-    rows: list[SheetRow] = []
     keys: dict[str, int] = {}
+    read = 0
     for number, cells in enumerate(
         read_cells(path, decimal_comma=decimal_comma, encoding=encoding), start=2
     ):
@@ -270,16 +272,16 @@ def read_sheet(
             parsed = parse_row(cells, decimal_comma=decimal_comma)
         except InputError as error:
             raise error.located(path=str(path), row=number) from None
-        if parsed.row_key is not None and parsed.row_key in keys:
-            raise InputError(
-                f"row_key {parsed.row_key!r} is also on row {keys[parsed.row_key]}",
-                field="row_key",
-                row=number,
-                path=str(path),
-            )
         if parsed.row_key is not None:
+            if parsed.row_key in keys:
+                raise InputError(
+                    f"row_key {parsed.row_key!r} is also on row {keys[parsed.row_key]}",
+                    field="row_key",
+                    row=number,
+                    path=str(path),
+                )
             keys[parsed.row_key] = number
-        rows.append(replace(parsed, row=number))
-    if not rows:
+        read += 1
+        yield replace(parsed, row=number)
+    if not read:
         raise InputError("the sheet has no data rows", path=str(path))
-    return rows

@@ -1,0 +1,464 @@
+"""Writing a sheet's rows to the registry in bulk, inside the caller's one transaction.
+
+Rows stream through in chunks of `CHUNK`: each chunk is planned (add, revise, present,
+not_reverted) with a few queries whose `IN` lists hold at most one value a row of the chunk,
+so no statement has a parameter per row of the sheet; its sources and studies are resolved
+once per distinct key; its entries, revisions and tags are written by Core `insert()`
+executemany, not by ORM objects flushed one at a time. A chunk is written before the next
+is planned, so a row repeating one earlier in the sheet is found in the registry as added by
+this import. Nothing of a chunk is kept afterwards but four integers a row in the plan log
+(and the plan of a row with changes or a note); a failure anywhere rolls the caller's
+transaction back, so a bad last row writes nothing.
+
+Entry and revision ids come back from `INSERT ... RETURNING` in the order of the rows given
+(SQLAlchemy's `sort_by_parameter_order`), which is correct on SQLite and PostgreSQL alike
+while other writers insert at the same time.
+"""
+
+from __future__ import annotations
+
+import hashlib
+from array import array
+from collections.abc import Callable, Iterable, Mapping
+from dataclasses import dataclass, field
+from datetime import datetime
+from itertools import islice
+from pathlib import Path
+from typing import Any
+
+from sqlalchemy import func, insert, select, update
+from sqlalchemy.orm import Session, selectinload
+
+from registry.errors import InputError
+from registry.evidence.sheets import SheetRow
+from registry.storage.models import (
+    Entry,
+    EntryRevision,
+    EntryTag,
+    ImportRecord,
+    Source,
+    Study,
+    utcnow,
+)
+
+# Rows planned and written together: the largest IN list of any statement.
+CHUNK = 500
+ACTIONS = ("add", "revise", "present", "not_reverted")
+_CODE = {action: n for n, action in enumerate(ACTIONS)}
+_WRITES = ("add", "revise")  # the actions that store a revision
+
+
+@dataclass(frozen=True)
+class RowPlan:
+    """What an import does with one sheet row, and why."""
+
+    row: int
+    action: str  # add | revise | present | not_reverted
+    entry: int | None = None
+    revision: int | None = None  # the revision it adds, is present as, or would revert to
+    changes: dict[str, dict[str, str | None]] = field(default_factory=dict)
+    note: str = ""
+
+    def to_dict(self) -> dict[str, Any]:
+        doc: dict[str, Any] = {"row": self.row, "entry": self.entry, "revision": self.revision}
+        if self.action in ("revise", "not_reverted"):
+            doc["changes"] = self.changes
+        if self.note:
+            doc["note"] = self.note
+        return doc
+
+
+class PlanLog:
+    """Every row's plan, kept compactly: row, action, entry and revision as four integers in
+    arrays (0 for none: ids and revision numbers start at 1), and the whole `RowPlan` only
+    for a row with changes or a note. A million rows take about 25 MB."""
+
+    def __init__(self) -> None:
+        self._rows = array("q")
+        self._actions = array("b")
+        self._entries = array("q")
+        self._revisions = array("q")
+        self._details: dict[int, RowPlan] = {}
+        self._counts = dict.fromkeys(ACTIONS, 0)
+
+    def append(self, plan: RowPlan) -> None:
+        if plan.changes or plan.note:
+            self._details[len(self._rows)] = plan
+        self._rows.append(plan.row)
+        self._actions.append(_CODE[plan.action])
+        self._entries.append(plan.entry or 0)
+        self._revisions.append(plan.revision or 0)
+        self._counts[plan.action] += 1
+
+    def count(self, action: str) -> int:
+        return self._counts[action]
+
+    def planned(self, action: str, limit: int | None = None) -> list[RowPlan]:
+        """The plans of `action` in row order, the first `limit` of them (all if None)."""
+        code, found = _CODE[action], []
+        for i, got in enumerate(self._actions):
+            if got != code:
+                continue
+            if limit is not None and len(found) == limit:
+                break
+            found.append(
+                self._details.get(i)
+                or RowPlan(
+                    self._rows[i], action, self._entries[i] or None, self._revisions[i] or None
+                )
+            )
+        return found
+
+
+@dataclass(frozen=True)
+class ImportReport:
+    path: str
+    rows: int
+    added: tuple[int, ...] = ()
+    skipped: int = 0
+    new_sources: tuple[str, ...] = ()
+    dry_run: bool = False
+    plan: PlanLog = field(default_factory=PlanLog, repr=False, compare=False)
+
+    def planned(self, action: str, limit: int | None = None) -> list[RowPlan]:
+        return self.plan.planned(action, limit)
+
+    @property
+    def message(self) -> str:
+        counts = {a: self.plan.count(a) for a in ACTIONS}
+        add, revise = ("would add", "would revise") if self.dry_run else ("added", "revised")
+        text = f"{self.path}: {self.rows} rows read, "
+        if counts["add"] or counts["revise"]:
+            text += f"{add} {counts['add']} entries, {revise} {counts['revise']}"
+        else:
+            text += "nothing added"
+        if counts["present"]:
+            text += f", {counts['present']} already in the registry"
+        if counts["not_reverted"]:
+            text += (
+                f", {counts['not_reverted']} rows match an older revision and are left at the "
+                "newer one (--allow-revert to bring them back)"
+            )
+        if self.new_sources:
+            text += (
+                f"; created {len(self.new_sources)} sources from the sheet, with no bibliography "
+                f"record: {', '.join(self.new_sources)} (complete them with `sources import`)"
+            )
+        return text
+
+    def to_dict(self) -> dict[str, Any]:
+        return {
+            "path": self.path,
+            "rows": self.rows,
+            "added": list(self.added),
+            "skipped": self.skipped,
+            "new_sources": list(self.new_sources),
+            "dry_run": self.dry_run,
+            **{f"rows_{a}": [p.to_dict() for p in self.planned(a)] for a in ACTIONS},
+        }
+
+
+def file_sha256(path: Path) -> str:
+    """The file's SHA-256, read in blocks (a large sheet is not held in memory for it)."""
+    with path.open("rb") as handle:
+        return hashlib.file_digest(handle, "sha256").hexdigest()
+
+
+def merge_source(
+    source: Source, fields: Mapping[str, object], where: str, key: str, row: int | None = None
+) -> bool:
+    """Fill the fields a source lacks; a field already set to another value is an error
+    (the citation excepted: it is free text). Whether anything was filled."""
+    changed = False
+    for name, value in fields.items():
+        current = getattr(source, name)
+        if current is None:
+            setattr(source, name, value)
+            changed = True
+        elif str(current) != str(value) and name != "citation":
+            raise InputError(
+                f"source {key!r} already has {name} {current!r:.80}, not {value!r:.80}; "
+                "`sources edit` or `sources import --update` records a revision",
+                field=name,
+                row=row,
+                path=where,
+            )
+    return changed
+
+
+def revision_values(
+    row: SheetRow,
+    entry_id: int,
+    number: int,
+    source_id: int,
+    study_id: int,
+    reason: str,
+    by: str | None,
+) -> dict[str, Any]:
+    """The columns of revision `number` of entry `entry_id` holding `row`."""
+    return {
+        "entry_id": entry_id,
+        "revision": number,
+        "source_id": source_id,
+        "study_id": study_id,
+        "quantity": row.quantity,
+        "measure": row.measure,
+        "reported": row.reported,
+        "y": row.derived.y,
+        "se": row.derived.se,
+        "scale": row.derived.scale,
+        "conversion": row.derived.conversion,
+        "identity": row.fingerprint,
+        "corrections": list(row.derived.corrections),
+        "context": row.context,
+        "extra": row.extra,
+        "reason": reason,
+        "created_by": by,
+    }
+
+
+class BulkImport:
+    """One import of rows into the registry through `session` (its transaction is the
+    caller's). `keyed_plan` decides a row whose `row_key` names a stored entry."""
+
+    def __init__(
+        self,
+        session: Session,
+        path: Path,
+        *,
+        kind: str,
+        keyed_plan: Callable[[SheetRow, Entry], RowPlan],
+        reason: str | None = None,
+        create_sources: bool = True,
+        by: str | None = None,
+    ) -> None:
+        self.session = session
+        self.path = path
+        self.kind = kind
+        self.keyed_plan = keyed_plan
+        self.why = (reason or "").strip()
+        self.create_sources = create_sources
+        self.by = by
+        self.now: datetime = utcnow()
+        self.record: int | None = None  # the import record, made with the first entry added
+        self.rows = 0
+        self.added = array("q")
+        self.new_sources: list[str] = []
+        self.log = PlanLog()
+
+    def run(self, rows: Iterable[SheetRow], *, dry_run: bool = False) -> ImportReport:
+        """Plan and write every row, chunk by chunk; the report of what was done."""
+        stream = iter(rows)
+        while chunk := list(islice(stream, CHUNK)):
+            self.rows += len(chunk)
+            plans = self._plan(chunk)
+            for plan in plans:
+                self.log.append(plan)
+            writes = [(r, p) for r, p in zip(chunk, plans, strict=True) if p.action in _WRITES]
+            if writes:
+                self._write(writes)
+            self.session.flush()
+            self.session.expunge_all()  # nothing of a chunk stays in memory
+        added = self.log.count("add")
+        if self.record is not None:
+            self.session.execute(
+                update(ImportRecord)
+                .where(ImportRecord.id == self.record)
+                .values(added=added, skipped=self.rows - added)
+            )
+        return ImportReport(
+            str(self.path),
+            self.rows,
+            () if dry_run else tuple(self.added),
+            self.log.count("present"),
+            tuple(self.new_sources),
+            dry_run,
+            self.log,
+        )
+
+    def _plan(self, rows: list[SheetRow]) -> list[RowPlan]:
+        """Decide, row by row, whether a row adds, revises or is already present, from three
+        queries over the chunk: entries by row key, revisions by identity, their heads."""
+        session = self.session
+        keys = [r.row_key for r in rows if r.row_key]
+        keyed = {}
+        if keys:
+            keyed = {
+                e.row_key: e
+                for e in session.scalars(
+                    select(Entry)
+                    .where(Entry.row_key.in_(keys))
+                    .options(
+                        selectinload(Entry.revisions).options(
+                            selectinload(EntryRevision.source),
+                            selectinload(EntryRevision.study),
+                            selectinload(EntryRevision.tags),
+                        )
+                    )
+                )
+            }
+        known = {
+            identity: (entry_id, revision, import_id, first)
+            for identity, entry_id, revision, import_id, first in session.execute(
+                select(
+                    EntryRevision.identity,
+                    EntryRevision.entry_id,
+                    EntryRevision.revision,
+                    Entry.import_id,
+                    Entry.row,
+                )
+                .join(Entry, Entry.id == EntryRevision.entry_id)
+                .where(EntryRevision.identity.in_([r.fingerprint for r in rows]))
+                .order_by(EntryRevision.revision)  # the latest revision with an identity wins
+            )
+        }
+        heads = {}
+        if known:
+            heads = dict(
+                session.execute(
+                    select(EntryRevision.entry_id, func.max(EntryRevision.revision))
+                    .where(EntryRevision.entry_id.in_({k[0] for k in known.values()}))
+                    .group_by(EntryRevision.entry_id)
+                ).all()
+            )
+        plans, seen = [], {}
+        for row in rows:
+            if row.row_key in keyed:
+                plans.append(self.keyed_plan(row, keyed[row.row_key]))
+            elif row.fingerprint in known:
+                entry_id, revision, import_id, first = known[row.fingerprint]
+                if self.record is not None and import_id == self.record:  # added by this import
+                    plans.append(RowPlan(row.row, "present", note=f"same as row {first}"))
+                    continue
+                later = heads[entry_id] > revision
+                note = f"the entry is now at revision {heads[entry_id]}" if later else ""
+                plans.append(RowPlan(row.row, "present", entry_id, revision, note=note))
+                if row.row_key:  # a key given to a row imported before it had one
+                    entry = session.get(Entry, entry_id)
+                    if entry is not None and entry.row_key is None:
+                        entry.row_key = row.row_key
+            elif row.fingerprint in seen:
+                plans.append(
+                    RowPlan(row.row, "present", note=f"same as row {seen[row.fingerprint]}")
+                )
+            else:
+                seen[row.fingerprint] = row.row
+                plans.append(RowPlan(row.row, "add"))
+        return plans
+
+    def _write(self, writes: list[tuple[SheetRow, RowPlan]]) -> None:
+        """Store the chunk's new entries and revisions (and their tags) in bulk."""
+        session = self.session
+        sources = self._sources([r for r, _ in writes])
+        studies = self._studies([r.study for r, _ in writes])
+        fresh = [r for r, p in writes if p.action == "add"]
+        ids = iter(self._entries(fresh))
+        name = self.path.name
+        revisions = []
+        for row, plan in writes:
+            if plan.action == "add":
+                entry, number, why = next(ids), 1, f"imported from {name} row {row.row}"
+            else:
+                assert plan.entry is not None and plan.revision is not None
+                entry, number = plan.entry, plan.revision
+                why = self.why or f"re-imported from {name} row {row.row}"
+            values = revision_values(
+                row, entry, number, sources[row.source], studies[row.study], why, self.by
+            )
+            revisions.append({**values, "created_at": self.now})
+        table = EntryRevision.__table__
+        if not any(r.tags for r, _ in writes):
+            session.execute(insert(table), revisions)
+            return
+        made = session.execute(
+            insert(table).returning(table.c.id, sort_by_parameter_order=True), revisions
+        ).scalars()
+        tags = [
+            {"revision_id": revision, "tag": tag}
+            for revision, (row, _) in zip(made, writes, strict=True)
+            for tag in row.tags
+        ]
+        session.execute(insert(EntryTag.__table__), tags)
+
+    def _entries(self, rows: list[SheetRow]) -> list[int]:
+        """Insert entries for `rows` (the import record first, if this is the first); their
+        ids in the order of `rows`."""
+        if not rows:
+            return []
+        session = self.session
+        if self.record is None:
+            self.record = session.scalar(
+                insert(ImportRecord)
+                .values(
+                    kind=self.kind,
+                    path=str(self.path),
+                    sha256=file_sha256(self.path),
+                    added=0,
+                    skipped=0,
+                    imported_at=self.now,
+                    created_by=self.by,
+                )
+                .returning(ImportRecord.id)
+            )
+        table = Entry.__table__
+        ids = list(
+            session.execute(
+                insert(table).returning(table.c.id, sort_by_parameter_order=True),
+                [
+                    {
+                        "fingerprint": r.fingerprint,
+                        "row_key": r.row_key,
+                        "import_id": self.record,
+                        "row": r.row,
+                        "created_at": self.now,
+                    }
+                    for r in rows
+                ],
+            ).scalars()
+        )
+        self.added.extend(ids)
+        return ids
+
+    def _sources(self, rows: list[SheetRow]) -> dict[str, int]:
+        """Source ids by key for `rows`, read in one query; a row's source fields fill in
+        what its source lacks; an unknown key makes a source, or with `create_sources` off is
+        an error naming the first row that has it."""
+        session, where = self.session, str(self.path)
+        keys = list(dict.fromkeys(r.source for r in rows))
+        found = {s.key: s for s in session.scalars(select(Source).where(Source.key.in_(keys)))}
+        for row in rows:
+            info: dict[str, object] = dict(row.source_info)
+            if "year" in info:
+                info["year"] = int(str(info["year"]))
+            source = found.get(row.source)
+            if source is not None:
+                merge_source(source, info, where, row.source, row.row)
+                continue
+            if not self.create_sources:
+                raise InputError(
+                    f"no source with key {row.source!r}: import its reference with "
+                    "`sources import` first (--known-sources refuses unknown keys)",
+                    field="source",
+                    row=row.row,
+                    path=where,
+                )
+            found[row.source] = Source(key=row.source, created_by=self.by, **info)
+            session.add(found[row.source])
+            self.new_sources.append(row.source)
+        session.flush()
+        return {key: source.id for key, source in found.items()}
+
+    def _studies(self, keys: list[str]) -> dict[str, int]:
+        """Study ids by key, read in one query; a study not yet known is made."""
+        session = self.session
+        wanted = list(dict.fromkeys(keys))
+        ids = dict(session.execute(select(Study.key, Study.id).where(Study.key.in_(wanted))).all())
+        missing = [k for k in wanted if k not in ids]
+        if missing:
+            table = Study.__table__
+            made = session.execute(
+                insert(table).returning(table.c.key, table.c.id, sort_by_parameter_order=True),
+                [{"key": k, "created_at": self.now} for k in missing],
+            )
+            ids.update(made.all())
+        return ids
