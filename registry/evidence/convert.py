@@ -17,6 +17,7 @@ Stdlib only (``statistics.NormalDist`` for normal quantiles), so that the CLI st
 
 from __future__ import annotations
 
+import functools
 import itertools
 import math
 from collections.abc import Callable, Mapping
@@ -586,6 +587,14 @@ def _missing(form: _Form, present: frozenset[str]) -> list[str]:
 
 
 def _select_form(measure: str, present: frozenset[str]) -> _Form:
+    """The one complete form the filled columns make for `measure`, or an error saying why
+    there is none; decided once per measure row and set of columns (a sheet repeats few)."""
+    return _form_for(measure, _TABLE[measure], present)
+
+
+@functools.lru_cache(maxsize=4096)
+def _form_for(measure: str, row: Measure, present: frozenset[str]) -> _Form:
+    # `row` is in the cache key so that a measure row replaced in the table is decided anew.
     complete = [f for f in _FORMS if set(f.fields) <= present]
     # A form inside a larger complete one (median, q1, q3, n inside the five numbers) yields.
     complete = [f for f in complete if not any(set(f.fields) < set(g.fields) for g in complete)]

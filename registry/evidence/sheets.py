@@ -20,7 +20,7 @@ import hashlib
 import json
 import re
 from collections.abc import Iterator
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, field
 from pathlib import Path
 
 from registry.errors import ConversionError, InputError
@@ -191,8 +191,9 @@ def identity(source: str, study: str, quantity: str, measure: str, numbers: dict
     return hashlib.sha256(json.dumps({**doc, **numbers}, sort_keys=True).encode()).hexdigest()
 
 
-def parse_row(cells: dict[str, str], *, decimal_comma: bool = False) -> SheetRow:
-    """Validate one row's cells and derive its estimate; errors name the column (no row)."""
+def parse_row(cells: dict[str, str], *, decimal_comma: bool = False, row: int = 0) -> SheetRow:
+    """Validate one row's cells and derive its estimate; errors name the column (not the
+    row: `row` is only stored on the result)."""
     for name in REQUIRED:
         if not cells.get(name):
             raise InputError("required value is empty", field=name)
@@ -231,7 +232,7 @@ def parse_row(cells: dict[str, str], *, decimal_comma: bool = False) -> SheetRow
     normal = {k: canonical(v, k in bounds) for k, v in numbers.items()}
     study = cells.get("study", cells["source"])
     return SheetRow(
-        row=0,
+        row=row,
         source=cells["source"],
         study=study,
         quantity=cells["quantity"],
@@ -269,7 +270,7 @@ def iter_sheet(
         if not cells:
             continue
         try:
-            parsed = parse_row(cells, decimal_comma=decimal_comma)
+            parsed = parse_row(cells, decimal_comma=decimal_comma, row=number)
         except InputError as error:
             raise error.located(path=str(path), row=number) from None
         if parsed.row_key is not None:
@@ -282,6 +283,6 @@ def iter_sheet(
                 )
             keys[parsed.row_key] = number
         read += 1
-        yield replace(parsed, row=number)
+        yield parsed
     if not read:
         raise InputError("the sheet has no data rows", path=str(path))
