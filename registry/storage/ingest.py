@@ -278,26 +278,10 @@ class BulkImport:
         )
 
     def _plan(self, rows: list[SheetRow]) -> list[RowPlan]:
-        """Decide, row by row, whether a row adds, revises or is already present, from three
-        queries over the chunk: entries by row key, revisions by identity, their heads."""
+        """Decide, row by row, whether a row adds, revises or is already present, from a few
+        queries over the chunk: keyed entries' heads, revisions by identity, their heads."""
         session = self.session
-        keys = [r.row_key for r in rows if r.row_key]
-        keyed = {}
-        if keys:
-            keyed = {
-                e.row_key: e
-                for e in session.scalars(
-                    select(Entry)
-                    .where(Entry.row_key.in_(keys))
-                    .options(
-                        selectinload(Entry.revisions).options(
-                            selectinload(EntryRevision.source),
-                            selectinload(EntryRevision.study),
-                            selectinload(EntryRevision.tags),
-                        )
-                    )
-                )
-            }
+        keyed = self._keyed(rows)
         known = {
             identity: (entry_id, revision, import_id, first)
             for identity, entry_id, revision, import_id, first in session.execute(
@@ -325,7 +309,7 @@ class BulkImport:
         plans, seen = [], {}
         for row in rows:
             if row.row_key in keyed:
-                plans.append(self.keyed_plan(row, keyed[row.row_key]))
+                plans.append(keyed[row.row_key])
             elif row.fingerprint in known:
                 entry_id, revision, import_id, first = known[row.fingerprint]
                 if self.record is not None and import_id == self.record:  # added by this import
@@ -345,6 +329,65 @@ class BulkImport:
             else:
                 seen[row.fingerprint] = row.row
                 plans.append(RowPlan(row.row, "add"))
+        return plans
+
+    def _keyed(self, rows: list[SheetRow]) -> dict[str, RowPlan]:
+        """The plans of the rows whose `row_key` names a stored entry, by key.
+
+        A row equal to its entry's current revision (same identity, context, extra cells and
+        tags: the cells a revision changes) is present, decided from the heads alone; only
+        the other keyed rows load their entries' histories for `keyed_plan`.
+        """
+        session = self.session
+        by_key = {r.row_key: r for r in rows if r.row_key}
+        if not by_key:
+            return {}
+        heads = {}  # row key -> (entry id, revision number, revision id, identity, context, extra)
+        for key, *head in session.execute(
+            select(
+                Entry.row_key,
+                Entry.id,
+                EntryRevision.revision,
+                EntryRevision.id,
+                EntryRevision.identity,
+                EntryRevision.context,
+                EntryRevision.extra,
+            )
+            .join(EntryRevision, EntryRevision.entry_id == Entry.id)
+            .where(Entry.row_key.in_(list(by_key)))
+            .order_by(EntryRevision.revision)  # the last one read is the head
+        ):
+            heads[key] = head
+        tags: dict[int, list[str]] = {}
+        if heads:
+            for revision_id, tag in session.execute(
+                select(EntryTag.revision_id, EntryTag.tag)
+                .where(EntryTag.revision_id.in_([h[2] for h in heads.values()]))
+                .order_by(EntryTag.tag)
+            ):
+                tags.setdefault(revision_id, []).append(tag)
+        plans, changed = {}, []
+        for key, (entry, number, revision_id, identity, context, extra) in heads.items():
+            row = by_key[key]
+            same = (identity, context, extra) == (row.fingerprint, row.context, row.extra)
+            if same and tuple(tags.get(revision_id, ())) == row.tags:
+                plans[key] = RowPlan(row.row, "present", entry, number)
+            else:
+                changed.append(key)
+        if changed:
+            for entry in session.scalars(
+                select(Entry)
+                .where(Entry.row_key.in_(changed))
+                .options(
+                    selectinload(Entry.revisions).options(
+                        selectinload(EntryRevision.source),
+                        selectinload(EntryRevision.study),
+                        selectinload(EntryRevision.tags),
+                    )
+                )
+            ):
+                assert entry.row_key is not None
+                plans[entry.row_key] = self.keyed_plan(by_key[entry.row_key], entry)
         return plans
 
     def _write(self, writes: list[tuple[SheetRow, RowPlan]]) -> None:
