@@ -17,6 +17,7 @@ from scipy import stats
 from sqlalchemy import event, select, text
 
 from registry.errors import InputError
+from registry.evidence import sheets
 from registry.evidence.sheets import parse_row
 from registry.storage.ledger import Ledger
 from registry.storage.models import Entry, EntryRevision
@@ -261,3 +262,21 @@ def test_no_statement_has_a_parameter_per_row(db_path: Path, tmp_path: Path) -> 
     report = ledger.import_sheet(write(tmp_path / "wide.csv", rows), create_sources=True)
     assert len(report.added) == 40_000 - REPEATS
     assert ledger.import_sheet(write(tmp_path / "wide.csv", rows)).added == ()
+
+
+def test_a_key_repeated_far_down_the_sheet_is_named(ledger: Ledger, tmp_path: Path) -> None:
+    rows = invented_rows(ROWS)
+    rows[ROWS - 100]["row_key"] = rows[0]["row_key"]
+    with pytest.raises(InputError, match="row_key 'r0' is also on row 2") as raised:
+        ledger.import_sheet(write(tmp_path / "keys.csv", rows), create_sources=True)
+    assert (raised.value.row, raised.value.field) == (ROWS - 98, "row_key")
+    assert ledger.entries() == [] and ledger.sources() == []
+
+
+def test_keys_that_only_share_a_hash_are_not_a_repeat(
+    db_path: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    monkeypatch.setattr(sheets, "hash", lambda key: 0, raising=False)  # every key collides
+    rows = invented_rows(60)
+    report = Ledger.open(str(db_path)).import_sheet(write(tmp_path / "few.csv", rows))
+    assert len(report.added) == 60 - REPEATS

@@ -10,7 +10,6 @@ from __future__ import annotations
 
 import codecs
 import csv
-import io
 import warnings
 from collections.abc import Iterator
 from pathlib import Path
@@ -81,13 +80,24 @@ def read_text(path: Path, encoding: str | None = None) -> str:
     return decode(read_bytes(path), path, encoding)
 
 
+def _lines(path: Path, encoding: str | None) -> Iterator[str]:
+    """The lines of the file (already checked by `decode`), read and decoded a block at a
+    time, line ends kept untranslated as the csv module needs: neither the file's bytes
+    nor its text (as a StringIO, four bytes a character) is held while its rows are read."""
+    with path.open(encoding=encoding or "utf-8", newline="") as stream:
+        first = next(stream, None)
+        if first is not None:
+            yield first.removeprefix("\ufeff")
+            yield from stream
+
+
 def _csv_grid(path: Path, encoding: str | None) -> Iterator[list[str]]:
-    text = read_text(path, encoding)
+    # Every check of the text first, before any row is read; the text is not kept.
+    first = read_text(path, encoding).partition("\n")[0]
     csv.field_size_limit(MAX_CELL)
-    first = text.partition("\n")[0]
     # Column names hold neither character, so the header shows the delimiter.
     delimiter = ";" if ";" in first and "," not in first else ","
-    reader = csv.reader(io.StringIO(text, newline=""), delimiter=delimiter)
+    reader = csv.reader(_lines(path, encoding), delimiter=delimiter)
     try:
         for line in reader:
             yield [c.strip() for c in line]

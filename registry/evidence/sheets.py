@@ -256,13 +256,13 @@ def iter_sheet(
     """Every row of a sheet, validated, one at a time in sheet order (a large sheet is never
     held whole); the first bad cell raises with file, row and column.
 
-    A `row_key` given on two rows is an error naming the second (the keys seen so far are
-    the only thing kept from one row to the next).
+    A `row_key` given on two rows is an error naming the second. Only a hash of each key is
+    kept from row to row; a repeated hash is confirmed by reading the keys again.
     """
     path = Path(path)
     if not path.is_file():
         raise InputError("no such file", path=str(path))
-    keys: dict[str, int] = {}
+    keys: set[int] = set()
     read = 0
     for number, cells in enumerate(
         read_cells(path, decimal_comma=decimal_comma, encoding=encoding), start=2
@@ -274,15 +274,27 @@ def iter_sheet(
         except InputError as error:
             raise error.located(path=str(path), row=number) from None
         if parsed.row_key is not None:
-            if parsed.row_key in keys:
-                raise InputError(
-                    f"row_key {parsed.row_key!r} is also on row {keys[parsed.row_key]}",
-                    field="row_key",
-                    row=number,
-                    path=str(path),
-                )
-            keys[parsed.row_key] = number
+            if hash(parsed.row_key) in keys:
+                _refuse_repeated_key(path, parsed.row_key, number, decimal_comma, encoding)
+            keys.add(hash(parsed.row_key))
         read += 1
         yield parsed
     if not read:
         raise InputError("the sheet has no data rows", path=str(path))
+
+
+def _refuse_repeated_key(
+    path: Path, key: str, number: int, decimal_comma: bool, encoding: str | None
+) -> None:
+    """Raise if `key` is on a row before row `number` (else two keys only shared a hash)."""
+    cells_by_row = read_cells(path, decimal_comma=decimal_comma, encoding=encoding)
+    for earlier, cells in enumerate(cells_by_row, start=2):
+        if earlier == number:
+            return
+        if cells.get("row_key") == key:
+            raise InputError(
+                f"row_key {key!r} is also on row {earlier}",
+                field="row_key",
+                row=number,
+                path=str(path),
+            )
