@@ -75,12 +75,16 @@ def _upper_z(tail: float) -> float:
 
 def _value_rule(measure: str) -> tuple[Callable[[float], bool], str]:
     """What a natural-scale estimate or bound of ``measure`` must be."""
-    bounds = _TABLE[measure].bounds
-    if bounds is not None:
-        lo, hi = bounds
+    return _rule_for(_TABLE[measure])
+
+
+@functools.lru_cache(maxsize=256)
+def _rule_for(row: Measure) -> tuple[Callable[[float], bool], str]:
+    # One rule per measure row, not a new closure for every sheet row.
+    if row.bounds is not None:
+        lo, hi = row.bounds
         return (lambda x: lo <= x <= hi), f"between {lo:g} and {hi:g}"
-    scale = _TABLE[measure].scale
-    return (lambda x: in_domain(scale, x)), domain(scale)
+    return (lambda x: in_domain(row.scale, x)), domain(row.scale)
 
 
 def _check_values(measure: str, values: Mapping[str, float], fields: tuple[str, ...]) -> None:

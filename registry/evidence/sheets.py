@@ -52,6 +52,8 @@ VOCABULARY = {
 }
 KEY_PATTERN = re.compile(r"[A-Za-z0-9][A-Za-z0-9_.:/+-]*")
 # Columns that may be given as a percentage, by measure ("level" for every measure).
+# json.dumps(..., sort_keys=True), without making an encoder for every row.
+_CANONICAL_JSON = json.JSONEncoder(sort_keys=True)
 PERCENT_FIELDS: dict[str, tuple[str, ...]] = {
     "proportion": ("estimate", "lower", "upper", "se"),
     "risk_difference": ("estimate", "lower", "upper", "se"),
@@ -188,7 +190,7 @@ def identity(source: str, study: str, quantity: str, measure: str, numbers: dict
     numbers. Migration 0004 gives stored revisions their identity by this rule.
     """
     doc = {"source": source, "study": study, "quantity": quantity, "measure": measure}
-    return hashlib.sha256(json.dumps({**doc, **numbers}, sort_keys=True).encode()).hexdigest()
+    return hashlib.sha256(_CANONICAL_JSON.encode({**doc, **numbers}).encode()).hexdigest()
 
 
 def parse_row(cells: dict[str, str], *, decimal_comma: bool = False, row: int = 0) -> SheetRow:
