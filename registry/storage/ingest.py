@@ -28,8 +28,9 @@ from itertools import islice
 from pathlib import Path
 from typing import Any
 
-from sqlalchemy import func, insert, select, text, update
+from sqlalchemy import JSON, Dialect, Table, func, insert, select, text, update
 from sqlalchemy.orm import Session, selectinload
+from sqlalchemy.types import TypeEngine
 
 from registry.errors import InputError
 from registry.evidence.sheets import SheetRow
@@ -217,6 +218,46 @@ def revision_values(
         "reason": reason,
         "created_by": by,
     }
+
+
+def insert_many(
+    session: Session, table: Table, rows: list[dict[str, Any]], shared: Mapping[str, Any]
+) -> None:
+    """Insert `rows` (each with the same columns) and the `shared` values into `table`, by
+    one executemany on the driver.
+
+    Each value is converted by its column type's bind processor for this database, as a Core
+    `insert()` would do, without the per-row work of building its parameters; the shared
+    values, and an empty JSON value, are converted once.
+    """
+    connection = session.connection()
+    dialect = connection.dialect
+    compiled = insert(table).compile(dialect=dialect, column_keys=[*rows[0], *shared])
+    names = compiled.positiontup if compiled.positional else [*rows[0], *shared]
+    assert names is not None and set(names) == {*rows[0], *shared}
+    fixed = {name: _converter(table.c[name].type, dialect)(v) for name, v in shared.items()}
+    convert = [(name, _converter(table.c[name].type, dialect)) for name in names]
+    if compiled.positional:
+        params: list[Any] = [
+            tuple(fixed[n] if n in fixed else c(row[n]) for n, c in convert) for row in rows
+        ]
+    else:
+        params = [{**{n: c(row[n]) for n, c in convert if n not in fixed}, **fixed} for row in rows]
+    connection.exec_driver_sql(compiled.string, params)
+
+
+def _converter(kind: TypeEngine[Any], dialect: Dialect) -> Callable[[Any], Any]:
+    """The bind processor of `kind` on `dialect` (identity where it has none), with an empty
+    JSON value converted once."""
+    process = kind.dialect_impl(dialect).bind_processor(dialect)
+    if process is None:
+        return lambda value: value
+    if not isinstance(kind, JSON):
+        return process
+    empty = {dict: process({}), list: process([])}
+    return lambda value: (
+        empty[type(value)] if type(value) in empty and not value else process(value)
+    )
 
 
 class BulkImport:
@@ -410,8 +451,8 @@ class BulkImport:
             values = revision_values(
                 row, entry, number, sources[row.source], studies[row.study], why, self.by
             )
-            revisions.append({**values, "id": next(revision_ids), "created_at": self.now})
-        session.execute(insert(EntryRevision.__table__), revisions)
+            revisions.append({**values, "id": next(revision_ids)})
+        insert_many(session, EntryRevision.__table__, revisions, {"created_at": self.now})
         tags = [
             {"revision_id": values["id"], "tag": tag}
             for values, (row, _) in zip(revisions, writes, strict=True)
@@ -460,19 +501,14 @@ class BulkImport:
                 .returning(ImportRecord.id)
             )
         ids = self._new_ids(Entry, len(rows))
-        session.execute(
-            insert(Entry.__table__),
+        insert_many(
+            session,
+            Entry.__table__,
             [
-                {
-                    "id": entry_id,
-                    "fingerprint": r.fingerprint,
-                    "row_key": r.row_key,
-                    "import_id": self.record,
-                    "row": r.row,
-                    "created_at": self.now,
-                }
+                {"id": entry_id, "fingerprint": r.fingerprint, "row_key": r.row_key, "row": r.row}
                 for entry_id, r in zip(ids, rows, strict=True)
             ],
+            {"import_id": self.record, "created_at": self.now},
         )
         self.added.extend(ids)
         return ids
