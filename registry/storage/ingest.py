@@ -28,7 +28,7 @@ from itertools import islice
 from pathlib import Path
 from typing import Any
 
-from sqlalchemy import JSON, Dialect, Table, func, insert, select, text, update
+from sqlalchemy import JSON, Dialect, Table, bindparam, func, insert, select, text, update
 from sqlalchemy.orm import Session, selectinload
 from sqlalchemy.types import TypeEngine
 
@@ -260,6 +260,40 @@ def _converter(kind: TypeEngine[Any], dialect: Dialect) -> Callable[[Any], Any]:
     )
 
 
+# The planning queries, built once: a chunk's values go in one expanding parameter.
+_VALUES = bindparam("values", expanding=True)
+# Revisions with one of the identities, their entries' import and row; the latest revision
+# with an identity comes last.
+_BY_IDENTITY = (
+    select(
+        EntryRevision.identity,
+        EntryRevision.entry_id,
+        EntryRevision.revision,
+        Entry.import_id,
+        Entry.row,
+    )
+    .join(Entry, Entry.id == EntryRevision.entry_id)
+    .where(EntryRevision.identity.in_(_VALUES))
+    .order_by(EntryRevision.revision)
+)
+# The revisions of the entries with one of the row keys, what a revision changes; an
+# entry's current revision comes last.
+_BY_KEY = (
+    select(
+        Entry.row_key,
+        Entry.id,
+        EntryRevision.revision,
+        EntryRevision.id,
+        EntryRevision.identity,
+        EntryRevision.context,
+        EntryRevision.extra,
+    )
+    .join(EntryRevision, EntryRevision.entry_id == Entry.id)
+    .where(Entry.row_key.in_(_VALUES))
+    .order_by(EntryRevision.revision)
+)
+
+
 class BulkImport:
     """One import of rows into the registry through `session` (its transaction is the
     caller's). `keyed_plan` decides a row whose `row_key` names a stored entry."""
@@ -327,16 +361,7 @@ class BulkImport:
         known = {
             identity: (entry_id, revision, import_id, first)
             for identity, entry_id, revision, import_id, first in session.execute(
-                select(
-                    EntryRevision.identity,
-                    EntryRevision.entry_id,
-                    EntryRevision.revision,
-                    Entry.import_id,
-                    Entry.row,
-                )
-                .join(Entry, Entry.id == EntryRevision.entry_id)
-                .where(EntryRevision.identity.in_([r.fingerprint for r in rows]))
-                .order_by(EntryRevision.revision)  # the latest revision with an identity wins
+                _BY_IDENTITY, {"values": [r.fingerprint for r in rows]}
             )
         }
         heads = {}
@@ -385,20 +410,7 @@ class BulkImport:
         if not by_key:
             return {}
         heads = {}  # row key -> (entry id, revision number, revision id, identity, context, extra)
-        for key, *head in session.execute(
-            select(
-                Entry.row_key,
-                Entry.id,
-                EntryRevision.revision,
-                EntryRevision.id,
-                EntryRevision.identity,
-                EntryRevision.context,
-                EntryRevision.extra,
-            )
-            .join(EntryRevision, EntryRevision.entry_id == Entry.id)
-            .where(Entry.row_key.in_(list(by_key)))
-            .order_by(EntryRevision.revision)  # the last one read is the head
-        ):
+        for key, *head in session.execute(_BY_KEY, {"values": list(by_key)}):
             heads[key] = head
         tags: dict[int, list[str]] = {}
         if heads:
