@@ -68,6 +68,7 @@ def _num(x: float) -> str:
     return f"{x:g}"
 
 
+@functools.lru_cache(maxsize=1024)  # a sheet repeats its levels: 0.95 on nearly every row
 def _upper_z(tail: float) -> float:
     """z with P(Z > z) = tail; from the lower tail so that tiny tails keep their precision."""
     return -_STANDARD_NORMAL.inv_cdf(tail)
@@ -674,7 +675,9 @@ def derive(
         raise ConversionError(
             f"measure must be one of {', '.join(_TABLE)}, got {measure!r}", field="measure"
         )
-    unbounded = [name for name in NUMERIC_FIELDS if name in bounds and name != "p"]
+    unbounded = (
+        [name for name in NUMERIC_FIELDS if name in bounds and name != "p"] if bounds else []
+    )
     if unbounded:
         raise ConversionError(
             "only a p-value may be reported as an inequality (<0.001)", field=unbounded[0]
