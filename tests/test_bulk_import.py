@@ -7,6 +7,7 @@ and from a mean's SD) and the large-sample variance of a logit (common practice)
 from __future__ import annotations
 
 import csv
+import json
 import math
 import random
 import sqlite3
@@ -282,3 +283,17 @@ def test_keys_that_only_share_a_hash_are_not_a_repeat(
     rows = invented_rows(60)
     report = Ledger.open(str(db_path)).import_sheet(write(tmp_path / "few.csv", rows))
     assert len(report.added) == 60 - REPEATS
+
+
+def test_the_import_command_lists_fifty_revised_rows_and_counts_the_rest(
+    cli, db_path: Path, tmp_path: Path
+) -> None:  # type: ignore[no-untyped-def]
+    rows = [r for r in invented_rows(200) if r["row_key"]][:60]
+    assert cli("import", write(tmp_path / "a.csv", rows), "--db", db_path).code == 0
+    fixed = [{**r, "notes": "corrected"} for r in rows]
+    done = cli("import", write(tmp_path / "b.csv", fixed), "--db", db_path)
+    assert done.code == 0 and "revised 60" in done.stderr
+    assert done.stderr.count(" revises entry ") == 50
+    assert "... and 10 more such rows (--json lists every row)" in done.stderr
+    back = cli("import", write(tmp_path / "c.csv", rows), "--db", db_path, "--json")
+    assert len(json.loads(back.stdout)["rows_not_reverted"]) == 60  # back to revision 1
