@@ -262,35 +262,31 @@ def _converter(kind: TypeEngine[Any], dialect: Dialect) -> Callable[[Any], Any]:
 
 # The planning queries, built once: a chunk's values go in one expanding parameter.
 _VALUES = bindparam("values", expanding=True)
-# Revisions with one of the identities, their entries' import and row; the latest revision
-# with an identity comes last.
-_BY_IDENTITY = (
-    select(
-        EntryRevision.identity,
-        EntryRevision.entry_id,
-        EntryRevision.revision,
-        Entry.import_id,
-        Entry.row,
+
+
+def _revisions_where(match: Any, *columns: Any) -> Any:
+    """`columns` of the revisions (joined to their entries) whose `match` column holds one
+    of a chunk's values, by revision number: an entry's latest revision comes last."""
+    return (
+        select(*columns)
+        .select_from(EntryRevision)
+        .join(Entry, Entry.id == EntryRevision.entry_id)
+        .where(match.in_(_VALUES))
+        .order_by(EntryRevision.revision)
     )
-    .join(Entry, Entry.id == EntryRevision.entry_id)
-    .where(EntryRevision.identity.in_(_VALUES))
-    .order_by(EntryRevision.revision)
+
+
+# Revisions with one of the identities, with their entries' import and row.
+_BY_IDENTITY = _revisions_where(
+    EntryRevision.identity,
+    *(EntryRevision.identity, EntryRevision.entry_id, EntryRevision.revision),
+    *(Entry.import_id, Entry.row),
 )
-# The revisions of the entries with one of the row keys, what a revision changes; an
-# entry's current revision comes last.
-_BY_KEY = (
-    select(
-        Entry.row_key,
-        Entry.id,
-        EntryRevision.revision,
-        EntryRevision.id,
-        EntryRevision.identity,
-        EntryRevision.context,
-        EntryRevision.extra,
-    )
-    .join(EntryRevision, EntryRevision.entry_id == Entry.id)
-    .where(Entry.row_key.in_(_VALUES))
-    .order_by(EntryRevision.revision)
+# The revisions of the entries with one of the row keys, with what a revision changes.
+_BY_KEY = _revisions_where(
+    Entry.row_key,
+    *(Entry.row_key, Entry.id, EntryRevision.revision, EntryRevision.id),
+    *(EntryRevision.identity, EntryRevision.context, EntryRevision.extra),
 )
 
 
