@@ -3,12 +3,14 @@
 Rows stream through in chunks of `CHUNK`: each chunk is planned (add, revise, present,
 not_reverted) with a few queries whose `IN` lists hold at most one value a row of the chunk,
 so no statement has a parameter per row of the sheet; its sources and studies are resolved
-once per distinct key; its entries, revisions and tags are written by Core `insert()`
-executemany, not by ORM objects flushed one at a time. A chunk is written before the next
-is planned, so a row repeating one earlier in the sheet is found in the registry as added by
-this import. Nothing of a chunk is kept afterwards but four integers a row in the plan log
-(and the plan of a row with changes or a note); a failure anywhere rolls the caller's
-transaction back, so a bad last row writes nothing.
+once per distinct key; its entries and revisions are written by one driver executemany
+each (`insert_many`) and its tags by a Core `insert()`, not by ORM objects flushed one at a
+time. A chunk is written before the next is planned, so a row repeating one earlier in the
+sheet is found in the registry as added by this import. Nothing of a chunk is kept
+afterwards but four integers a row in the plan log (and the plan of a row with changes or a
+note) and the new entries' ids; a failure anywhere rolls the caller's transaction back, so
+a bad last row writes nothing. Errors come in row order a chunk at a time: a bad cell is
+found before a chunk is planned, an unknown source when it is written.
 
 New entries and revisions are given their ids before they are inserted (`_new_ids`), so
 that nothing is read back: correct on SQLite and PostgreSQL alike while other writers
