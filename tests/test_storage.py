@@ -67,7 +67,7 @@ def test_import_twice_adds_nothing(ledger: Ledger, tmp_path: Path) -> None:
 def test_dry_run_writes_nothing(ledger: Ledger, tmp_path: Path) -> None:
     sheet = write_sheet(tmp_path / "s.csv", HEADER, ["a2020", "q", "rate", 10, 20.0, "", ""])
     report = ledger.import_sheet(sheet, dry_run=True, create_sources=True)
-    assert len(report.entries) == 1 and report.new_sources == ("a2020",)
+    assert len(report.planned("add")) == 1 and report.new_sources == ("a2020",)
     assert ledger.entries() == [] and ledger.sources() == []
 
 

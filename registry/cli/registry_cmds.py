@@ -39,6 +39,8 @@ if TYPE_CHECKING:
 
 sources_app = typer.Typer()
 entries_app = typer.Typer()
+# Revised (and not reverted) rows an import lists on stderr; --json lists every one.
+SHOWN_CHANGES = 50
 
 
 def init(db: DbOption = None) -> None:
@@ -96,10 +98,14 @@ def import_sheet(
         print_json(report.to_dict())
         return
     err.print(report.message)
-    for plan in report.planned("revise") + report.planned("not_reverted"):
-        changed = ", ".join(f"{k} {v['from']} -> {v['to']}" for k, v in plan.changes.items())
-        verb = "revises" if plan.action == "revise" else "is not reverted:"
-        err.print(f"  row {plan.row} {verb} entry {plan.entry}: {changed}")
+    for action in ("revise", "not_reverted"):
+        for plan in report.planned(action, SHOWN_CHANGES):
+            changed = ", ".join(f"{k} {v['from']} -> {v['to']}" for k, v in plan.changes.items())
+            verb = "revises" if plan.action == "revise" else "is not reverted:"
+            err.print(f"  row {plan.row} {verb} entry {plan.entry}: {changed}")
+        more = report.plan.count(action) - SHOWN_CHANGES
+        if more > 0:
+            err.print(f"  ... and {more} more such rows (--json lists every row)")
 
 
 @sources_app.callback(invoke_without_command=True)

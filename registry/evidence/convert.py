@@ -17,6 +17,7 @@ Stdlib only (``statistics.NormalDist`` for normal quantiles), so that the CLI st
 
 from __future__ import annotations
 
+import functools
 import itertools
 import math
 from collections.abc import Callable, Mapping
@@ -67,6 +68,7 @@ def _num(x: float) -> str:
     return f"{x:g}"
 
 
+@functools.lru_cache(maxsize=1024)  # a sheet repeats its levels: 0.95 on nearly every row
 def _upper_z(tail: float) -> float:
     """z with P(Z > z) = tail; from the lower tail so that tiny tails keep their precision."""
     return -_STANDARD_NORMAL.inv_cdf(tail)
@@ -74,12 +76,16 @@ def _upper_z(tail: float) -> float:
 
 def _value_rule(measure: str) -> tuple[Callable[[float], bool], str]:
     """What a natural-scale estimate or bound of ``measure`` must be."""
-    bounds = _TABLE[measure].bounds
-    if bounds is not None:
-        lo, hi = bounds
+    return _rule_for(_TABLE[measure])
+
+
+@functools.lru_cache(maxsize=256)
+def _rule_for(row: Measure) -> tuple[Callable[[float], bool], str]:
+    # One rule per measure row, not a new closure for every sheet row.
+    if row.bounds is not None:
+        lo, hi = row.bounds
         return (lambda x: lo <= x <= hi), f"between {lo:g} and {hi:g}"
-    scale = _TABLE[measure].scale
-    return (lambda x: in_domain(scale, x)), domain(scale)
+    return (lambda x: in_domain(row.scale, x)), domain(row.scale)
 
 
 def _check_values(measure: str, values: Mapping[str, float], fields: tuple[str, ...]) -> None:
@@ -586,6 +592,14 @@ def _missing(form: _Form, present: frozenset[str]) -> list[str]:
 
 
 def _select_form(measure: str, present: frozenset[str]) -> _Form:
+    """The one complete form the filled columns make for `measure`, or an error saying why
+    there is none; decided once per measure row and set of columns (a sheet repeats few)."""
+    return _form_for(measure, _TABLE[measure], present)
+
+
+@functools.lru_cache(maxsize=4096)
+def _form_for(measure: str, row: Measure, present: frozenset[str]) -> _Form:
+    # `row` is in the cache key so that a measure row replaced in the table is decided anew.
     complete = [f for f in _FORMS if set(f.fields) <= present]
     # A form inside a larger complete one (median, q1, q3, n inside the five numbers) yields.
     complete = [f for f in complete if not any(set(f.fields) < set(g.fields) for g in complete)]
@@ -661,7 +675,9 @@ def derive(
         raise ConversionError(
             f"measure must be one of {', '.join(_TABLE)}, got {measure!r}", field="measure"
         )
-    unbounded = [name for name in NUMERIC_FIELDS if name in bounds and name != "p"]
+    unbounded = (
+        [name for name in NUMERIC_FIELDS if name in bounds and name != "p"] if bounds else []
+    )
     if unbounded:
         raise ConversionError(
             "only a p-value may be reported as an inequality (<0.001)", field=unbounded[0]

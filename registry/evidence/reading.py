@@ -10,7 +10,6 @@ from __future__ import annotations
 
 import codecs
 import csv
-import io
 import warnings
 from collections.abc import Iterator
 from pathlib import Path
@@ -81,13 +80,24 @@ def read_text(path: Path, encoding: str | None = None) -> str:
     return decode(read_bytes(path), path, encoding)
 
 
+def _lines(path: Path, encoding: str | None) -> Iterator[str]:
+    """The lines of the file (already checked by `decode`), read and decoded a block at a
+    time, line ends kept untranslated as the csv module needs: neither the file's bytes
+    nor its text (as a StringIO, four bytes a character) is held while its rows are read."""
+    with path.open(encoding=encoding or "utf-8", newline="") as stream:
+        first = next(stream, None)
+        if first is not None:
+            yield first.removeprefix("\ufeff")
+            yield from stream
+
+
 def _csv_grid(path: Path, encoding: str | None) -> Iterator[list[str]]:
-    text = read_text(path, encoding)
+    # Every check of the text first, before any row is read; the text is not kept.
+    first = read_text(path, encoding).partition("\n")[0]
     csv.field_size_limit(MAX_CELL)
-    first = text.partition("\n")[0]
     # Column names hold neither character, so the header shows the delimiter.
     delimiter = ";" if ";" in first and "," not in first else ","
-    reader = csv.reader(io.StringIO(text, newline=""), delimiter=delimiter)
+    reader = csv.reader(_lines(path, encoding), delimiter=delimiter)
     try:
         for line in reader:
             yield [c.strip() for c in line]
@@ -110,7 +120,7 @@ def _cell_text(value: object, decimal_comma: bool) -> str:
     return str(value).strip()
 
 
-def _xlsx_grid(path: Path, decimal_comma: bool) -> list[list[str]]:
+def _xlsx_grid(path: Path, decimal_comma: bool) -> Iterator[list[str]]:
     from openpyxl import load_workbook
 
     # openpyxl warns about workbook features it skips (styles, data validation); they do
@@ -128,8 +138,8 @@ def _xlsx_grid(path: Path, decimal_comma: bool) -> list[list[str]]:
         try:
             if not workbook.worksheets:
                 raise InputError("the workbook has no worksheet", path=str(path))
-            rows = workbook.worksheets[0].iter_rows(values_only=True)
-            return [[_cell_text(v, decimal_comma) for v in values] for values in rows]
+            for values in workbook.worksheets[0].iter_rows(values_only=True):
+                yield [_cell_text(v, decimal_comma) for v in values]
         except InputError:
             raise
         except Exception as error:
@@ -141,14 +151,16 @@ def _xlsx_grid(path: Path, decimal_comma: bool) -> list[list[str]]:
             workbook.close()
 
 
-def _check_widths(grid: list[list[str]], path: Path) -> None:
-    """A row with more filled cells than the header has columns is refused: those cells
-    would be dropped, and they usually come from a decimal comma or a thousands separator
-    splitting one number into two cells."""
-    if not grid:
+def _checked_widths(grid: Iterator[list[str]], path: Path) -> Iterator[list[str]]:
+    """The rows of `grid`, refusing a row with more filled cells than the header has
+    columns: those cells would be dropped, and they usually come from a decimal comma or a
+    thousands separator splitting one number into two cells."""
+    header = next(grid, None)
+    if header is None:
         return
-    width = max((i + 1 for i, name in enumerate(grid[0]) if name), default=0)
-    for number, cells in enumerate(grid[1:], start=2):
+    yield header
+    width = max((i + 1 for i, name in enumerate(header) if name), default=0)
+    for number, cells in enumerate(grid, start=2):
         extra = [i for i, cell in enumerate(cells[width:], start=width + 1) if cell]
         if extra:
             raise InputError(
@@ -158,17 +170,18 @@ def _check_widths(grid: list[list[str]], path: Path) -> None:
                 row=number,
                 path=str(path),
             )
+        yield cells
 
 
-def read_grid(
+def iter_grid(
     path: Path, encoding: str | None = None, *, decimal_comma: bool = False
-) -> list[list[str]]:
+) -> Iterator[list[str]]:
     """The cells of a .csv file (comma- or semicolon-separated, as its header shows) or of an
-    .xlsx workbook's first sheet, as text, row by row; with `decimal_comma`, a workbook's
-    number cells are written with a decimal comma, as the sheet's text cells are."""
+    .xlsx workbook's first sheet, as text, row by row, one row at a time (a sheet of a million
+    rows is never held as a grid); with `decimal_comma`, a workbook's number cells are
+    written with a decimal comma, as the sheet's text cells are."""
     suffix = path.suffix.lower()
     if suffix not in SHEET_SUFFIXES:
         raise InputError("an extraction sheet must be .csv or .xlsx", path=str(path))
-    grid = list(_csv_grid(path, encoding)) if suffix == ".csv" else _xlsx_grid(path, decimal_comma)
-    _check_widths(grid, path)
-    return grid
+    grid = _csv_grid(path, encoding) if suffix == ".csv" else _xlsx_grid(path, decimal_comma)
+    return _checked_widths(grid, path)

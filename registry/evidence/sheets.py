@@ -19,12 +19,13 @@ from __future__ import annotations
 import hashlib
 import json
 import re
-from dataclasses import dataclass, field, replace
+from collections.abc import Iterator
+from dataclasses import dataclass, field
 from pathlib import Path
 
 from registry.errors import ConversionError, InputError
 from registry.evidence.convert import NUMERIC_FIELDS, Derived, derive
-from registry.evidence.reading import read_grid
+from registry.evidence.reading import iter_grid
 from registry.values.measures import MEASURES
 
 REQUIRED = ("source", "quantity", "measure")
@@ -51,6 +52,8 @@ VOCABULARY = {
 }
 KEY_PATTERN = re.compile(r"[A-Za-z0-9][A-Za-z0-9_.:/+-]*")
 # Columns that may be given as a percentage, by measure ("level" for every measure).
+# json.dumps(..., sort_keys=True), without making an encoder for every row.
+_CANONICAL_JSON = json.JSONEncoder(sort_keys=True)
 PERCENT_FIELDS: dict[str, tuple[str, ...]] = {
     "proportion": ("estimate", "lower", "upper", "se"),
     "risk_difference": ("estimate", "lower", "upper", "se"),
@@ -104,12 +107,13 @@ def read_cells(
     required: tuple[str, ...] = REQUIRED,
     decimal_comma: bool = False,
     encoding: str | None = None,
-) -> list[dict[str, str]]:
-    """The sheet's data rows as column -> text, empty cells left out."""
-    grid = read_grid(path, encoding, decimal_comma=decimal_comma)
-    if not grid:
+) -> Iterator[dict[str, str]]:
+    """The sheet's data rows as column -> text, empty cells left out, one at a time."""
+    grid = iter_grid(path, encoding, decimal_comma=decimal_comma)
+    first = next(grid, None)
+    if first is None:
         raise InputError("the sheet is empty", path=str(path))
-    header = [h.strip().lower() for h in grid[0]]
+    header = [h.strip().lower() for h in first]
     for name in header:
         if name and name not in columns and not name.startswith("x_"):
             raise InputError(
@@ -124,10 +128,8 @@ def read_cells(
     duplicated = {h for h in header if h and header.count(h) > 1}
     if duplicated:
         raise InputError("column appears twice", field=sorted(duplicated)[0], row=1, path=str(path))
-    rows = []
-    for cells in grid[1:]:
-        rows.append({h: c for h, c in zip(header, cells, strict=False) if h and c != ""})
-    return rows
+    for cells in grid:
+        yield {h: c for h, c in zip(header, cells, strict=False) if h and c != ""}
 
 
 def parse_number(
@@ -188,11 +190,12 @@ def identity(source: str, study: str, quantity: str, measure: str, numbers: dict
     numbers. Migration 0004 gives stored revisions their identity by this rule.
     """
     doc = {"source": source, "study": study, "quantity": quantity, "measure": measure}
-    return hashlib.sha256(json.dumps({**doc, **numbers}, sort_keys=True).encode()).hexdigest()
+    return hashlib.sha256(_CANONICAL_JSON.encode({**doc, **numbers}).encode()).hexdigest()
 
 
-def parse_row(cells: dict[str, str], *, decimal_comma: bool = False) -> SheetRow:
-    """Validate one row's cells and derive its estimate; errors name the column (no row)."""
+def parse_row(cells: dict[str, str], *, decimal_comma: bool = False, row: int = 0) -> SheetRow:
+    """Validate one row's cells and derive its estimate; errors name the column (not the
+    row: `row` is only stored on the result)."""
     for name in REQUIRED:
         if not cells.get(name):
             raise InputError("required value is empty", field=name)
@@ -231,7 +234,7 @@ def parse_row(cells: dict[str, str], *, decimal_comma: bool = False) -> SheetRow
     normal = {k: canonical(v, k in bounds) for k, v in numbers.items()}
     study = cells.get("study", cells["source"])
     return SheetRow(
-        row=0,
+        row=row,
         source=cells["source"],
         study=study,
         quantity=cells["quantity"],
@@ -249,37 +252,51 @@ def parse_row(cells: dict[str, str], *, decimal_comma: bool = False) -> SheetRow
     )
 
 
-def read_sheet(
+def iter_sheet(
     path: str | Path, *, decimal_comma: bool = False, encoding: str | None = None
-) -> list[SheetRow]:
-    """Every row of a sheet, validated; the first bad cell raises with file, row and column.
+) -> Iterator[SheetRow]:
+    """Every row of a sheet, validated, one at a time in sheet order (a large sheet is never
+    held whole); the first bad cell raises with file, row and column.
 
-    A `row_key` given on two rows is an error naming the second.
+    A `row_key` given on two rows is an error naming the second. Only a hash of each key is
+    kept from row to row; a repeated hash is confirmed by reading the keys again.
     """
     path = Path(path)
     if not path.is_file():
         raise InputError("no such file", path=str(path))
-    rows: list[SheetRow] = []
-    keys: dict[str, int] = {}
+    keys: set[int] = set()
+    read = 0
     for number, cells in enumerate(
         read_cells(path, decimal_comma=decimal_comma, encoding=encoding), start=2
     ):
         if not cells:
             continue
         try:
-            parsed = parse_row(cells, decimal_comma=decimal_comma)
+            parsed = parse_row(cells, decimal_comma=decimal_comma, row=number)
         except InputError as error:
             raise error.located(path=str(path), row=number) from None
-        if parsed.row_key is not None and parsed.row_key in keys:
+        if parsed.row_key is not None:
+            if hash(parsed.row_key) in keys:
+                _refuse_repeated_key(path, parsed.row_key, number, decimal_comma, encoding)
+            keys.add(hash(parsed.row_key))
+        read += 1
+        yield parsed
+    if not read:
+        raise InputError("the sheet has no data rows", path=str(path))
+
+
+def _refuse_repeated_key(
+    path: Path, key: str, number: int, decimal_comma: bool, encoding: str | None
+) -> None:
+    """Raise if `key` is on a row before row `number` (else two keys only shared a hash)."""
+    cells_by_row = read_cells(path, decimal_comma=decimal_comma, encoding=encoding)
+    for earlier, cells in enumerate(cells_by_row, start=2):
+        if earlier == number:
+            return
+        if cells.get("row_key") == key:
             raise InputError(
-                f"row_key {parsed.row_key!r} is also on row {keys[parsed.row_key]}",
+                f"row_key {key!r} is also on row {earlier}",
                 field="row_key",
                 row=number,
                 path=str(path),
             )
-        if parsed.row_key is not None:
-            keys[parsed.row_key] = number
-        rows.append(replace(parsed, row=number))
-    if not rows:
-        raise InputError("the sheet has no data rows", path=str(path))
-    return rows

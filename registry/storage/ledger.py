@@ -6,22 +6,30 @@
 
 from __future__ import annotations
 
-import hashlib
-from collections.abc import Iterator, Mapping, Sequence
+import functools
+from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
 from contextlib import contextmanager
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, replace
 from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
 from sqlalchemy import Connection, Engine, func, select, text
-from sqlalchemy.orm import Session, selectinload, sessionmaker
+from sqlalchemy.orm import Session, sessionmaker
 
 from registry.errors import InputError, NotFoundError
 from registry.evidence.bibliography import read_bibliography
 from registry.evidence.elicit import Elicitation, read_elicitation
-from registry.evidence.sheets import COLUMNS, REQUIRED, SheetRow, parse_row, read_sheet
+from registry.evidence.sheets import COLUMNS, REQUIRED, SheetRow, iter_sheet, parse_row
 from registry.storage import db, location
+from registry.storage.ingest import (
+    BulkImport,
+    ImportReport,
+    RowPlan,
+    file_sha256,
+    merge_source,
+    revision_values,
+)
 from registry.storage.models import (
     Entry,
     EntryRevision,
@@ -33,78 +41,6 @@ from registry.storage.models import (
 )
 from registry.storage.reads import Reads
 from registry.storage.views import EntryHistory, EntryView, SourceView, StoredPrior
-
-
-@dataclass(frozen=True)
-class RowPlan:
-    """What an import does with one sheet row, and why."""
-
-    row: int
-    action: str  # add | revise | present | not_reverted
-    entry: int | None = None
-    revision: int | None = None  # the revision it adds, is present as, or would revert to
-    changes: dict[str, dict[str, str | None]] = field(default_factory=dict)
-    note: str = ""
-
-    def to_dict(self) -> dict[str, Any]:
-        doc: dict[str, Any] = {"row": self.row, "entry": self.entry, "revision": self.revision}
-        if self.action in ("revise", "not_reverted"):
-            doc["changes"] = self.changes
-        if self.note:
-            doc["note"] = self.note
-        return doc
-
-
-_ACTIONS = ("add", "revise", "present", "not_reverted")
-
-
-@dataclass(frozen=True)
-class ImportReport:
-    path: str
-    rows: int
-    added: tuple[int, ...] = ()
-    skipped: int = 0
-    new_sources: tuple[str, ...] = ()
-    dry_run: bool = False
-    entries: tuple[SheetRow, ...] = field(default=(), repr=False)
-    plan: tuple[RowPlan, ...] = ()
-
-    def planned(self, action: str) -> list[RowPlan]:
-        return [p for p in self.plan if p.action == action]
-
-    @property
-    def message(self) -> str:
-        counts = {a: len(self.planned(a)) for a in _ACTIONS}
-        add, revise = ("would add", "would revise") if self.dry_run else ("added", "revised")
-        text = f"{self.path}: {self.rows} rows read, "
-        if counts["add"] or counts["revise"]:
-            text += f"{add} {counts['add']} entries, {revise} {counts['revise']}"
-        else:
-            text += "nothing added"
-        if counts["present"]:
-            text += f", {counts['present']} already in the registry"
-        if counts["not_reverted"]:
-            text += (
-                f", {counts['not_reverted']} rows match an older revision and are left at the "
-                "newer one (--allow-revert to bring them back)"
-            )
-        if self.new_sources:
-            text += (
-                f"; created {len(self.new_sources)} sources from the sheet, with no bibliography "
-                f"record: {', '.join(self.new_sources)} (complete them with `sources import`)"
-            )
-        return text
-
-    def to_dict(self) -> dict[str, Any]:
-        return {
-            "path": self.path,
-            "rows": self.rows,
-            "added": list(self.added),
-            "skipped": self.skipped,
-            "new_sources": list(self.new_sources),
-            "dry_run": self.dry_run,
-            **{f"rows_{a}": [p.to_dict() for p in self.planned(a)] for a in _ACTIONS},
-        }
 
 
 @dataclass(frozen=True)
@@ -123,10 +59,6 @@ class SourceImportReport:
             "unchanged": self.unchanged,
             "updated": list(self.updated),
         }
-
-
-def _sha256(path: Path) -> str:
-    return hashlib.sha256(path.read_bytes()).hexdigest()
 
 
 SOURCE_METADATA = ("citation", "title", "authors", "journal", "doi", "year")
@@ -300,7 +232,7 @@ class Ledger:
                     else:
                         unchanged += 1
                     continue
-                changes = self._merge_source(source, record.fields(), str(path), record.key)
+                changes = merge_source(source, record.fields(), str(path), record.key)
                 if changes:
                     completed.append(record.key)
                 else:
@@ -309,7 +241,7 @@ class Ledger:
                 ImportRecord(
                     kind="bibliography",
                     path=str(path),
-                    sha256=_sha256(path),
+                    sha256=file_sha256(path),
                     added=len(added),
                     skipped=unchanged,
                     created_by=by,
@@ -318,26 +250,6 @@ class Ledger:
         return SourceImportReport(
             str(path), tuple(added), tuple(completed), unchanged, tuple(updated)
         )
-
-    @staticmethod
-    def _merge_source(
-        source: Source, fields: Mapping[str, object], where: str, key: str, row: int | None = None
-    ) -> bool:
-        changed = False
-        for name, value in fields.items():
-            current = getattr(source, name)
-            if current is None:
-                setattr(source, name, value)
-                changed = True
-            elif str(current) != str(value) and name != "citation":
-                raise InputError(
-                    f"source {key!r} already has {name} {current!r:.80}, not {value!r:.80}; "
-                    "`sources edit` or `sources import --update` records a revision",
-                    field=name,
-                    row=row,
-                    path=where,
-                )
-        return changed
 
     def edit_source(
         self, key: str, changes: Mapping[str, str], reason: str, *, user: str | None = None
@@ -440,10 +352,9 @@ class Ledger:
         the registry is an error unless `create_sources`.
         """
         path = Path(path)
-        rows = read_sheet(path, decimal_comma=decimal_comma, encoding=encoding)
         return self._import_rows(
             path,
-            rows,
+            lambda: iter_sheet(path, decimal_comma=decimal_comma, encoding=encoding),
             kind="sheet",
             dry_run=dry_run,
             reason=reason,
@@ -470,7 +381,7 @@ class Ledger:
         elicitation = read_elicitation(path, family=family, pool=pool, decimal_comma=decimal_comma)
         report = self._import_rows(
             path,
-            elicitation.rows(),
+            elicitation.rows,
             kind="elicitation",
             dry_run=dry_run,
             create_sources=create_sources,
@@ -482,7 +393,7 @@ class Ledger:
     def _import_rows(
         self,
         path: Path,
-        rows: Sequence[SheetRow],
+        rows: Callable[[], Iterable[SheetRow]],
         *,
         kind: str,
         dry_run: bool,
@@ -491,153 +402,18 @@ class Ledger:
         create_sources: bool = True,
         user: str | None = None,
     ) -> ImportReport:
-        why = (reason or "").strip()
-        by = db.who(user)
+        """Plan and write `rows()` in bulk (`storage.ingest`), all in one transaction (rolled
+        back for a dry run); `rows` is called afresh when a race makes the write run again."""
         with self.transaction(commit=not dry_run) as session:
-            plans = self._plan(session, rows, allow_revert)
-            new_sources: list[str] = []
-            added = []
-            fresh = [r for r, p in zip(rows, plans, strict=True) if p.action == "add"]
-            record = None
-            if fresh:  # a sheet with nothing new leaves no import record
-                record = ImportRecord(
-                    kind=kind,
-                    path=str(path),
-                    sha256=_sha256(path),
-                    added=len(fresh),
-                    skipped=len(rows) - len(fresh),
-                    created_by=by,
-                )
-                session.add(record)
-            for row, plan in zip(rows, plans, strict=True):
-                if plan.action not in ("add", "revise"):
-                    continue
-                source = self._source_for(session, row, str(path), new_sources, by, create_sources)
-                if plan.action == "add":
-                    entry = Entry(
-                        fingerprint=row.fingerprint, row_key=row.row_key, origin=record, row=row.row
-                    )
-                    session.add(entry)
-                    session.flush()
-                    self._add_revision(
-                        session,
-                        entry.id,
-                        1,
-                        row,
-                        source,
-                        f"imported from {path.name} row {row.row}",
-                        by,
-                    )
-                    added.append(entry.id)
-                else:
-                    assert plan.entry is not None and plan.revision is not None
-                    self._add_revision(
-                        session,
-                        plan.entry,
-                        plan.revision,
-                        row,
-                        source,
-                        why or f"re-imported from {path.name} row {row.row}",
-                        by,
-                    )
-        present = sum(p.action == "present" for p in plans)
-        return ImportReport(
-            str(path),
-            len(rows),
-            () if dry_run else tuple(added),
-            present,
-            tuple(new_sources),
-            dry_run,
-            tuple(fresh),
-            tuple(plans),
-        )
-
-    @staticmethod
-    def _plan(session: Session, rows: Sequence[SheetRow], allow_revert: bool) -> list[RowPlan]:
-        """Decide, row by row, whether a sheet row adds, revises or is already present.
-
-        Entries and revisions are read in a few queries for the whole sheet, not per row.
-        """
-        keyed = {
-            e.row_key: e
-            for e in session.scalars(
-                select(Entry)
-                .where(Entry.row_key.in_([r.row_key for r in rows if r.row_key]))
-                .options(
-                    selectinload(Entry.revisions).options(
-                        selectinload(EntryRevision.source),
-                        selectinload(EntryRevision.study),
-                        selectinload(EntryRevision.tags),
-                    )
-                )
-            )
-        }
-        known = {
-            identity: (entry_id, revision)
-            for identity, entry_id, revision in session.execute(
-                select(EntryRevision.identity, EntryRevision.entry_id, EntryRevision.revision)
-                .where(EntryRevision.identity.in_([r.fingerprint for r in rows]))
-                .order_by(EntryRevision.revision)  # the latest revision with an identity wins
-            )
-        }
-        heads = dict(
-            session.execute(
-                select(EntryRevision.entry_id, func.max(EntryRevision.revision))
-                .where(EntryRevision.entry_id.in_([e for e, _ in known.values()]))
-                .group_by(EntryRevision.entry_id)
-            ).all()
-        )
-        plans, seen = [], {}
-        for row in rows:
-            if row.row_key in keyed:
-                plans.append(_keyed_plan(row, keyed[row.row_key], allow_revert))
-            elif row.fingerprint in known:
-                entry_id, revision = known[row.fingerprint]
-                later = heads[entry_id] > revision
-                note = f"the entry is now at revision {heads[entry_id]}" if later else ""
-                plans.append(RowPlan(row.row, "present", entry_id, revision, note=note))
-                if row.row_key:  # a key given to a row imported before it had one
-                    entry = session.get(Entry, entry_id)
-                    if entry is not None and entry.row_key is None:
-                        entry.row_key = row.row_key
-            elif row.fingerprint in seen:
-                plans.append(
-                    RowPlan(row.row, "present", note=f"same as row {seen[row.fingerprint]}")
-                )
-            else:
-                seen[row.fingerprint] = row.row
-                plans.append(RowPlan(row.row, "add"))
-        return plans
-
-    @staticmethod
-    def _source_for(
-        session: Session,
-        row: SheetRow,
-        where: str,
-        new: list[str],
-        by: str | None,
-        create: bool = False,
-    ) -> Source:
-        source = session.scalar(select(Source).where(Source.key == row.source))
-        info: dict[str, object] = dict(row.source_info)
-        if "year" in info:
-            info["year"] = int(str(info["year"]))
-        if source is None:
-            if not create:
-                raise InputError(
-                    f"no source with key {row.source!r}: import its reference with "
-                    "`sources import` first (--known-sources refuses unknown keys)",
-                    field="source",
-                    row=row.row,
-                    path=where,
-                )
-            source = Source(key=row.source, created_by=by, **info)
-            session.add(source)
-            session.flush()
-            new.append(row.source)
-        else:
-            Ledger._merge_source(source, info, where, row.source, row.row)
-        return source
+            return BulkImport(
+                session,
+                path,
+                kind=kind,
+                keyed_plan=functools.partial(_keyed_plan, allow_revert=allow_revert),
+                reason=reason,
+                create_sources=create_sources,
+                by=db.who(user),
+            ).run(rows(), dry_run=dry_run)
 
     @staticmethod
     def _add_revision(
@@ -655,23 +431,7 @@ class Ledger:
             session.add(study)
             session.flush()
         revision = EntryRevision(
-            entry_id=entry_id,
-            revision=number,
-            source_id=source.id,
-            study_id=study.id,
-            quantity=row.quantity,
-            measure=row.measure,
-            reported=row.reported,
-            y=row.derived.y,
-            se=row.derived.se,
-            scale=row.derived.scale,
-            conversion=row.derived.conversion,
-            identity=row.fingerprint,
-            corrections=list(row.derived.corrections),
-            context=row.context,
-            extra=row.extra,
-            reason=reason,
-            created_by=by,
+            **revision_values(row, entry_id, number, source.id, study.id, reason, by)
         )
         session.add(revision)
         session.flush()
