@@ -93,6 +93,22 @@ def test_priors_and_traces_equal_the_sqlalchemy_route(
     assert all(doc["stale"] for doc in want.values())
 
 
+@pytest.mark.parametrize("name", ["lab #2?.db", "relative"])
+def test_any_file_name_is_read_with_sqlite3(
+    registry: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch, name: str
+) -> None:
+    """A name with URI characters, and a relative sqlite:/// URL, take the sqlite3 route."""
+    copy = tmp_path / ("r.db" if name == "relative" else name)
+    copy.write_bytes(registry.read_bytes())
+    monkeypatch.chdir(tmp_path)
+    where = "sqlite:///r.db" if name == "relative" else str(copy)
+    with Ledger.open(str(registry)).reading() as reads:
+        want = reads.entries(include_retracted=True)
+    without_ledger(monkeypatch)
+    with reading(where) as reads:
+        assert reads.entries(include_retracted=True) == want
+
+
 @pytest.mark.parametrize("limit", [1, 3, 1000])
 def test_pages_partition_the_listing(registry: Path, limit: int) -> None:
     with reading(str(registry)) as reads:

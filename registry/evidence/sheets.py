@@ -51,9 +51,9 @@ VOCABULARY = {
     "risk_of_bias": ("low", "some", "high"),
 }
 KEY_PATTERN = re.compile(r"[A-Za-z0-9][A-Za-z0-9_.:/+-]*")
-# Columns that may be given as a percentage, by measure ("level" for every measure).
 # json.dumps(..., sort_keys=True), without making an encoder for every row.
 _CANONICAL_JSON = json.JSONEncoder(sort_keys=True)
+# Columns that may be given as a percentage, by measure ("level" for every measure).
 PERCENT_FIELDS: dict[str, tuple[str, ...]] = {
     "proportion": ("estimate", "lower", "upper", "se"),
     "risk_difference": ("estimate", "lower", "upper", "se"),

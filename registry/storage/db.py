@@ -20,13 +20,13 @@ import functools
 import os
 import random
 import time
-from collections.abc import Callable, Iterator
+from collections.abc import Callable, Iterator, Mapping, Sequence
 from contextlib import contextmanager
 from importlib import resources
 from pathlib import Path
-from typing import ParamSpec, TypeVar
+from typing import Any, ParamSpec, TypeVar
 
-from sqlalchemy import Engine, create_engine, event, inspect, text
+from sqlalchemy import Connection, Engine, create_engine, event, inspect, text
 from sqlalchemy.engine import make_url
 from sqlalchemy.exc import ArgumentError, DBAPIError, NoSuchModuleError
 from sqlalchemy.orm import Session, sessionmaker
@@ -34,6 +34,7 @@ from sqlalchemy.pool import NullPool
 
 from registry.errors import ConflictError, InputError
 from registry.storage.location import SQLITE_ENVIRONMENT, head_from_files, sqlite_name
+from registry.storage.reads import Reads
 
 # How long a SQLite writer waits for another writer's lock before the write is retried.
 BUSY_SECONDS = 30.0
@@ -172,6 +173,15 @@ def make_engine(url: str) -> Engine:
         event.listen(engine, "begin", _sqlite_begin)
     event.listen(engine, "handle_error", _translator(url))
     return engine
+
+
+def reads_over(executor: Connection | Session) -> Reads:
+    """The read queries through a SQLAlchemy connection or session (inside its transaction)."""
+
+    def run(sql: str, params: Mapping[str, Any]) -> Sequence[Mapping[str, Any]]:
+        return [row._mapping for row in executor.execute(text(sql), params)]
+
+    return Reads(run)
 
 
 def writer(engine: Engine) -> Engine:

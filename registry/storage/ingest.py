@@ -36,6 +36,7 @@ from sqlalchemy.types import TypeEngine
 
 from registry.errors import InputError
 from registry.evidence.sheets import SheetRow
+from registry.storage import db
 from registry.storage.models import (
     Entry,
     EntryRevision,
@@ -362,15 +363,7 @@ class BulkImport:
                 _BY_IDENTITY, {"values": [r.fingerprint for r in rows]}
             )
         }
-        heads = {}
-        if known:
-            heads = dict(
-                session.execute(
-                    select(EntryRevision.entry_id, func.max(EntryRevision.revision))
-                    .where(EntryRevision.entry_id.in_({k[0] for k in known.values()}))
-                    .group_by(EntryRevision.entry_id)
-                ).all()
-            )
+        heads = db.reads_over(session).latest_revisions({k[0] for k in known.values()})
         plans, seen = [], {}
         for row in rows:
             if row.row_key in keyed:

@@ -14,7 +14,7 @@ from datetime import UTC, datetime
 from pathlib import Path
 from typing import Any
 
-from sqlalchemy import Connection, Engine, func, select, text
+from sqlalchemy import Engine, func, select
 from sqlalchemy.orm import Session, sessionmaker
 
 from registry.errors import InputError, NotFoundError
@@ -138,15 +138,6 @@ def _keyed_plan(row: SheetRow, entry: Entry, allow_revert: bool) -> RowPlan:
     return RowPlan(row.row, "revise", entry.id, head.revision + 1, changes)
 
 
-def reads_over(executor: Connection | Session) -> Reads:
-    """The read queries through a SQLAlchemy connection or session (inside its transaction)."""
-
-    def run(sql: str, params: Mapping[str, Any]) -> Sequence[Mapping[str, Any]]:
-        return [row._mapping for row in executor.execute(text(sql), params)]
-
-    return Reads(run)
-
-
 class Ledger:
     """A migrated registry at one database URL."""
 
@@ -174,7 +165,7 @@ class Ledger:
     def reading(self) -> Iterator[Reads]:
         """The read queries (`registry.storage.reads`) over one read transaction."""
         with self.engine.connect() as connection:
-            yield reads_over(connection)
+            yield db.reads_over(connection)
 
     def prior(self, label: str) -> StoredPrior:
         """`Reads.prior`: `NAME@N`, or the latest version of `NAME`."""

@@ -15,7 +15,7 @@ from sqlalchemy import select
 from registry import __version__
 from registry.errors import NotFoundError
 from registry.storage import db
-from registry.storage.ledger import Ledger, reads_over
+from registry.storage.ledger import Ledger
 from registry.storage.models import EntryRevision, PriorEntry, PriorVersion
 from registry.storage.views import StoredPrior, Use
 from registry.values.built import BuildResult
@@ -45,7 +45,7 @@ def save_version(
             .where(PriorVersion.name == name)
             .order_by(PriorVersion.version.desc())
         ).first()
-        reads = reads_over(session)
+        reads = db.reads_over(session)
         if latest is not None and latest.digest == digest:
             return reads.prior(f"{name}@{latest.version}")
         row = PriorVersion(

@@ -25,7 +25,7 @@ def _sqlite_file(url: str) -> Path | None:
     if not url.startswith(prefix):
         return None
     path = Path(url.removeprefix(prefix))
-    return path if path.is_file() else None
+    return path.resolve() if path.is_file() else None
 
 
 @contextmanager
@@ -33,7 +33,8 @@ def _sqlite_reads(path: Path) -> Iterator[Reads | None]:
     """Reads straight from an up-to-date SQLite registry in one read transaction; None when
     the file is not one (then the caller opens it as a `Ledger`, which says why)."""
     try:
-        connection = sqlite3.connect(f"file:{path}?mode=ro", uri=True, timeout=30.0)
+        # a URI, so the file opens read only; as_uri escapes what a name may hold (?, #, %)
+        connection = sqlite3.connect(f"{path.as_uri()}?mode=ro", uri=True, timeout=30.0)
     except sqlite3.Error:
         yield None
         return

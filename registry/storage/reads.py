@@ -285,10 +285,10 @@ class Reads:
             "SELECT id, key, retracted, retraction_reason FROM sources WHERE id IN ",
             {u["source_id"] for u in used},
         )
-        latest = self._latest_revisions({u["entry_id"] for u in used})
+        latest = self.latest_revisions({u["entry_id"] for u in used})
         return [_stored_prior(row, uses.get(row["id"], []), sources, latest) for row in rows]
 
-    def _latest_revisions(self, entry_ids: set[int]) -> dict[int, int]:
+    def latest_revisions(self, entry_ids: set[int]) -> dict[int, int]:
         """Each entry's latest revision number, read from the (entry, revision) index."""
         latest = {}
         for part in _chunks(sorted(entry_ids)):

@@ -114,23 +114,25 @@ class Family:
 
         By scipy, one distribution at a time; a family overrides it with its closed form,
         vectorised over the members, for EM (scipy's per-call checks dominate there)."""
-        import numpy as np
-        from scipy import stats
-
-        dist = getattr(stats, cls.scipy_name)
-        names = cls.parameter_names()
-        return np.stack([dist.logpdf(x, **dict(zip(names, p, strict=True))) for p in params])
+        return cls._each_by_scipy("logpdf", params, x)
 
     @classmethod
     def cdfs(cls, params: Any, x: Any) -> Any:
         """(J, G) distribution functions of J members (rows of `params`) at G points x inside
         the support; by scipy unless the family has a closed form (as `log_densities`)."""
+        return cls._each_by_scipy("cdf", params, x)
+
+    @classmethod
+    def _each_by_scipy(cls, method: str, params: Any, x: Any) -> Any:
+        """scipy's `method` (logpdf, cdf) of each member (a row of `params`) at x, stacked."""
         import numpy as np
         from scipy import stats
 
         dist = getattr(stats, cls.scipy_name)
         names = cls.parameter_names()
-        return np.stack([dist.cdf(x, **dict(zip(names, p, strict=True))) for p in params])
+        return np.stack(
+            [getattr(dist, method)(x, **dict(zip(names, p, strict=True))) for p in params]
+        )
 
     def pdf(self, x: Any) -> Any:
         return self.frozen().pdf(x)
@@ -175,6 +177,15 @@ class Family:
 _LOG_SQRT_2PI = 0.5 * math.log(2.0 * math.pi)
 
 
+def _member_columns(params: Any) -> tuple[Any, ...]:
+    """Each parameter of J members (the rows of `params`) as a (J, 1) column, to broadcast
+    against G points."""
+    import numpy as np
+
+    table = np.asarray(params, dtype=float)
+    return tuple(table[:, i, None] for i in range(table.shape[1]))
+
+
 def _normal_terms(phi: Any, mu: float, s: float) -> tuple[Any, Any, Any]:
     import numpy as np
 
@@ -209,7 +220,7 @@ class Normal(Family):
         of operations, so the values agree with scipy's to the bit)."""
         import numpy as np
 
-        loc, scale = (np.asarray(params, dtype=float)[:, i, None] for i in range(2))
+        loc, scale = _member_columns(params)
         z = (np.asarray(x, dtype=float) - loc) / scale
         return -(z**2) / 2.0 - np.log(np.sqrt(2 * np.pi)) - np.log(scale)
 
@@ -219,7 +230,7 @@ class Normal(Family):
         import numpy as np
         from scipy import special
 
-        loc, scale = (np.asarray(params, dtype=float)[:, i, None] for i in range(2))
+        loc, scale = _member_columns(params)
         return special.ndtr((np.asarray(x, dtype=float) - loc) / scale)
 
     def canonical_ppf(self, u: float) -> float:
@@ -348,7 +359,7 @@ class Beta(Family):
         import numpy as np
         from scipy import special
 
-        a, b = (np.asarray(params, dtype=float)[:, i, None] for i in range(2))
+        a, b = _member_columns(params)
         x = np.asarray(x, dtype=float)
         return special.xlog1py(b - 1.0, -x) + special.xlogy(a - 1.0, x) - special.betaln(a, b)
 
@@ -358,7 +369,7 @@ class Beta(Family):
         import numpy as np
         from scipy import special
 
-        a, b = (np.asarray(params, dtype=float)[:, i, None] for i in range(2))
+        a, b = _member_columns(params)
         return special.betainc(a, b, np.asarray(x, dtype=float))
 
     def tail_rates(self) -> tuple[float, float]:
@@ -429,7 +440,7 @@ class Gamma(Family):
         import numpy as np
         from scipy import special
 
-        a, scale = (np.asarray(params, dtype=float)[:, i, None] for i in range(2))
+        a, scale = _member_columns(params)
         z = np.asarray(x, dtype=float) / scale
         return special.xlogy(a - 1.0, z) - z - special.gammaln(a) - np.log(scale)
 
@@ -439,7 +450,7 @@ class Gamma(Family):
         import numpy as np
         from scipy import special
 
-        a, scale = (np.asarray(params, dtype=float)[:, i, None] for i in range(2))
+        a, scale = _member_columns(params)
         return special.gammainc(a, np.asarray(x, dtype=float) / scale)
 
     def tail_rates(self) -> tuple[float, float]:
